@@ -1,0 +1,5 @@
+//! One module per subcommand.
+pub mod demo;
+pub mod info;
+pub mod register;
+pub mod warp;

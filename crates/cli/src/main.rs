@@ -1,0 +1,62 @@
+//! `sinew`: deformable registration of 3-D scans on a CPU.
+//!
+//! Exit codes: 0 success; 2 bad input or failure (one line on stderr naming the file and
+//! the problem); 1 is never used on purpose.
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+mod cmd;
+mod ui;
+
+/// Deformable registration of 3-D medical scans on a CPU: MIND-SSC descriptors, diffusion
+/// regularisation, multi-resolution pyramid. Research use only; not for diagnosis or
+/// treatment.
+#[derive(Parser, Debug)]
+#[command(name = "sinew", version, about, long_about = None, propagate_version = true)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+enum Command {
+    /// Describe NIfTI files: shape, spacing, orientation, datatype, value range, labels.
+    Info(cmd::info::InfoArgs),
+    /// Write the synthetic demo cohort (CT-like abdomens with label maps).
+    Demo(cmd::demo::DemoArgs),
+    /// Register a moving scan to a fixed scan and write the field, warped scans and a report.
+    Register(cmd::register::RegisterArgs),
+    /// Apply a displacement field to a scan or a label map.
+    Warp(cmd::warp::WarpArgs),
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let result = match cli.command {
+        Command::Info(a) => cmd::info::run(a),
+        Command::Demo(a) => cmd::demo::run(a),
+        Command::Register(a) => cmd::register::run(a),
+        Command::Warp(a) => cmd::warp::run(a),
+    };
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            // One line: the context chain joined by ": ".
+            eprintln!("sinew: error: {e:#}");
+            ExitCode::from(2)
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use clap::CommandFactory;
+
+    #[test]
+    fn cli_definition_is_consistent() {
+        // clap's own consistency check (clap tutorial, "Testing").
+        super::Cli::command().debug_assert();
+    }
+}
