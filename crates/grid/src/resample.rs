@@ -69,3 +69,59 @@ mod tests {
         assert_eq!(rl.data[[2, 2, 1]], 7);
     }
 }
+
+/// Resamples a displacement field onto another grid (typically one pyramid level finer),
+/// trilinearly, keeping the physical displacement: each vector is carried to world mm with
+/// the source affine's linear part and back to voxels of `target`:
+/// `u_target(p) = M_t⁻¹ · M_s · u_src(A_s⁻¹ · A_t · p)`. Outside the source grid the edge
+/// vector is repeated.
+pub fn resample_field(src: &crate::Field, target: &Grid) -> crate::Field {
+    let m = voxel_map(target, &src.grid);
+    let lin = target.inverse_affine().compose(src.grid.affine()).linear();
+    let shape = src.grid.shape();
+    let comps = [src.component(0), src.component(1), src.component(2)];
+    let mut out = crate::Field::zeros(target.clone());
+    let n = target.len();
+    let [_, ny, nz] = target.shape();
+    let out_slice = out.data.as_slice_mut().expect("standard layout");
+    let (a, rest) = out_slice.split_at_mut(n);
+    let (b, c) = rest.split_at_mut(n);
+    let slab = ny * nz;
+    a.par_chunks_mut(slab).zip(b.par_chunks_mut(slab)).zip(c.par_chunks_mut(slab)).enumerate().for_each(
+        |(i, ((oa, ob), oc))| {
+            for j in 0..ny {
+                for k in 0..nz {
+                    let q = m.apply([i as f64, j as f64, k as f64]);
+                    let p = [q[0] as f32, q[1] as f32, q[2] as f32];
+                    let v = [0, 1, 2].map(|d| interp::trilinear(comps[d], shape, p, Border::Nearest) as f64);
+                    let w = [0, 1, 2].map(|r| (lin[r][0] * v[0] + lin[r][1] * v[1] + lin[r][2] * v[2]) as f32);
+                    let idx = j * nz + k;
+                    oa[idx] = w[0];
+                    ob[idx] = w[1];
+                    oc[idx] = w[2];
+                }
+            }
+        },
+    );
+    out
+}
+
+#[cfg(test)]
+mod field_tests {
+    use super::*;
+
+    #[test]
+    fn upsampled_constant_field_keeps_its_length_in_mm() {
+        let fine = Grid::axis_aligned([8, 8, 6], [2.0, 2.0, 3.0], [0.0; 3]);
+        let coarse = fine.halved([false, false, true]);
+        let mut f = crate::Field::zeros(coarse.clone());
+        let [a, b, c] = f.components_mut();
+        a.iter_mut().for_each(|v| *v = 1.5); // 1.5 coarse voxels = 6 mm along i
+        b.iter_mut().for_each(|v| *v = -0.5); // -2 mm along j
+        c.iter_mut().for_each(|v| *v = 1.0); // 3 mm along k (not halved)
+        let up = resample_field(&f, &fine);
+        assert!(up.component(0).iter().all(|&v| (v - 3.0).abs() < 1e-5));
+        assert!(up.component(1).iter().all(|&v| (v + 1.0).abs() < 1e-5));
+        assert!(up.component(2).iter().all(|&v| (v - 1.0).abs() < 1e-5));
+    }
+}
