@@ -1,0 +1,263 @@
+//! Reading NIfTI-1 images, label maps and displacement fields (`.nii` or gzip-compressed,
+//! detected from the content), without panicking on any input.
+//!
+//! Every size is checked against the header and [`ReadOptions::max_bytes`] before memory is
+//! reserved; gzip streams are decompressed only up to the size the header announces.
+
+use std::fs::File;
+use std::io::{BufRead, BufReader, Read};
+use std::path::Path;
+
+use flate2::bufread::MultiGzDecoder;
+use ndarray::{Array3, Array4, Axis};
+use sinew_grid::{Field, Image, LabelMap, Volume};
+
+use crate::header::{parse, DataType, HeaderInfo, HEADER_SIZE};
+use crate::write::FieldUnits;
+use crate::IoError;
+
+/// Limits applied while reading.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct ReadOptions {
+    /// Largest amount of voxel data (bytes, as stored) accepted; checked against the header's
+    /// claim before anything is allocated. Default 4 GiB.
+    pub max_bytes: u64,
+}
+
+impl Default for ReadOptions {
+    fn default() -> Self {
+        ReadOptions { max_bytes: 4 << 30 }
+    }
+}
+
+/// How to read a displacement field whose units the file does not record.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct FieldReadOptions {
+    /// Units to assume when the header has no sinew `intent_name` ("sinew-mm"/"sinew-vox");
+    /// `None` means millimetres. Units recorded by sinew in the file take precedence.
+    pub units: Option<FieldUnits>,
+    /// Size limits.
+    pub read: ReadOptions,
+}
+
+impl HeaderInfo {
+    /// The field units recorded by sinew in `intent_name`, if any.
+    pub fn sinew_field_units(&self) -> Option<FieldUnits> {
+        FieldUnits::from_intent_name(&self.intent_name)
+    }
+}
+
+/// Opens `path`, detecting gzip by its magic bytes `1f 8b`; returns the reader, whether it is
+/// compressed, and the file length in bytes.
+fn open(path: &Path) -> Result<(Box<dyn Read>, bool, u64), IoError> {
+    let file = File::open(path).map_err(|e| IoError::os(path, "cannot open", e))?;
+    let len = file.metadata().map_err(|e| IoError::os(path, "cannot stat", e))?.len();
+    let mut r = BufReader::with_capacity(1 << 16, file);
+    let head = r.fill_buf().map_err(|e| IoError::os(path, "cannot read", e))?;
+    let gz = head.len() >= 2 && head[0] == 0x1f && head[1] == 0x8b;
+    Ok(if gz { (Box::new(MultiGzDecoder::new(r)), true, len) } else { (Box::new(r), false, len) })
+}
+
+/// Reads until `buf` is full or the stream ends; returns the count read.
+fn read_full(path: &Path, r: &mut dyn Read, buf: &mut [u8]) -> Result<usize, IoError> {
+    let mut n = 0;
+    while n < buf.len() {
+        match r.read(&mut buf[n..]) {
+            Ok(0) => break,
+            Ok(k) => n += k,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+            Err(e) if e.kind() == std::io::ErrorKind::UnexpectedEof => break,
+            Err(e) => return Err(IoError::os(path, "cannot read (corrupt gzip stream?)", e)),
+        }
+    }
+    Ok(n)
+}
+
+fn read_header_from(path: &Path, r: &mut dyn Read, gz: bool) -> Result<HeaderInfo, IoError> {
+    let mut buf = [0u8; HEADER_SIZE];
+    let n = read_full(path, r, &mut buf)?;
+    if n >= 4 {
+        crate::header::check_sizeof_hdr(path, [buf[0], buf[1], buf[2], buf[3]])?;
+    }
+    if n < HEADER_SIZE {
+        return Err(IoError::NotNifti {
+            path: path.to_path_buf(),
+            reason: format!("only {n} bytes, shorter than a NIfTI-1 header ({HEADER_SIZE} bytes)"),
+        });
+    }
+    parse(path, &buf, gz)
+}
+
+/// Reads and validates the header of a NIfTI-1 file (plain or gzip).
+pub fn read_header(path: &Path) -> Result<HeaderInfo, IoError> {
+    let (mut r, gz, _) = open(path)?;
+    read_header_from(path, &mut r, gz)
+}
+
+/// The header and the raw voxel bytes, size-checked before allocation.
+fn read_raw(path: &Path, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<u8>), IoError> {
+    let (mut r, gz, file_len) = open(path)?;
+    let info = read_header_from(path, &mut r, gz)?;
+    let want = info.data_bytes;
+    if want > opts.max_bytes {
+        return Err(IoError::TooLarge { path: path.to_path_buf(), bytes: want, max: opts.max_bytes });
+    }
+    let truncated =
+        |found: u64| IoError::Truncated { path: path.to_path_buf(), offset: info.vox_offset, expected: want, found };
+    if !gz && file_len < info.vox_offset.saturating_add(want) {
+        return Err(truncated(file_len.saturating_sub(info.vox_offset)));
+    }
+    let skip = info.vox_offset - HEADER_SIZE as u64;
+    let skipped = std::io::copy(&mut (&mut r).take(skip), &mut std::io::sink())
+        .map_err(|e| IoError::os(path, "cannot read (corrupt gzip stream?)", e))?;
+    if skipped < skip {
+        return Err(truncated(0));
+    }
+    // For gzip the claim is not yet backed by data: grow the buffer as bytes arrive.
+    let first = if gz { want.min(64 << 20) } else { want };
+    let mut data = Vec::with_capacity(first as usize);
+    match (&mut r).take(want).read_to_end(&mut data) {
+        Ok(_) => {}
+        Err(e) if e.kind() == std::io::ErrorKind::UnexpectedEof => {}
+        Err(e) => return Err(IoError::os(path, "cannot read (corrupt gzip stream?)", e)),
+    }
+    if (data.len() as u64) < want {
+        return Err(truncated(data.len() as u64));
+    }
+    Ok((info, data))
+}
+
+/// Decodes raw bytes to `T` through `f(value as f64)`, in file order.
+fn decode<T>(bytes: &[u8], dt: DataType, little: bool, f: impl FnMut(f64) -> T) -> Vec<T> {
+    macro_rules! go {
+        ($t:ty) => {{
+            const N: usize = std::mem::size_of::<$t>();
+            let conv = if little { <$t>::from_le_bytes } else { <$t>::from_be_bytes };
+            bytes.chunks_exact(N).map(|c| conv(c.try_into().expect("chunk of N bytes")) as f64).map(f).collect()
+        }};
+    }
+    match dt {
+        DataType::U8 => go!(u8),
+        DataType::I8 => go!(i8),
+        DataType::U16 => go!(u16),
+        DataType::I16 => go!(i16),
+        DataType::U32 => go!(u32),
+        DataType::I32 => go!(i32),
+        DataType::F32 => go!(f32),
+        DataType::F64 => go!(f64),
+    }
+}
+
+/// Reorders file-order values (i fastest, then j, k, then volumes) into `(nvol, nx, ny, nz)`
+/// standard layout (k fastest).
+fn to_memory_order<T: Clone>(disk: Vec<T>, shape: [usize; 3], nvol: usize) -> Array4<T> {
+    let [nx, ny, nz] = shape;
+    Array4::from_shape_vec((nvol, nz, ny, nx), disk)
+        .expect("decoded length matches the header")
+        .permuted_axes([0, 3, 2, 1])
+        .as_standard_layout()
+        .into_owned()
+}
+
+/// Scaled values `slope·raw + inter` as f32 (no scaling when slope is 0 or not finite).
+fn scaled_f32(info: &HeaderInfo, bytes: &[u8]) -> Vec<f32> {
+    match info.scaling() {
+        Some((s, i)) if (s, i) != (1.0, 0.0) => {
+            decode(bytes, info.datatype, info.little_endian, |v| (s * v + i) as f32)
+        }
+        _ => decode(bytes, info.datatype, info.little_endian, |v| v as f32),
+    }
+}
+
+fn grid_err(path: &Path) -> impl FnOnce(sinew_grid::GridError) -> IoError + '_ {
+    move |source| IoError::Grid { path: path.to_path_buf(), source }
+}
+
+fn single_volume(path: &Path, info: &HeaderInfo) -> Result<(), IoError> {
+    if info.n_extra() != 1 {
+        return Err(IoError::WrongShape {
+            path: path.to_path_buf(),
+            reason: format!("dims {:?} hold {} volumes; expected a single 3-D volume", info.dims, info.n_extra()),
+        });
+    }
+    Ok(())
+}
+
+/// Every voxel value of a NIfTI-1 file, scaled, in file order (i fastest), with its header;
+/// any dimensionality. For summaries that do not need the 3-D layout.
+pub fn read_values(path: &Path, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<f32>), IoError> {
+    let (info, bytes) = read_raw(path, opts)?;
+    let v = scaled_f32(&info, &bytes);
+    Ok((info, v))
+}
+
+/// Reads a 3-D scalar image (any supported datatype) as f32, applying `scl_slope`/`scl_inter`
+/// when the slope is non-zero and finite. NaN/inf voxels are kept (see
+/// [`Image::count_non_finite`]). Default limits.
+pub fn read_image(path: &Path) -> Result<Image, IoError> {
+    read_image_with(path, &ReadOptions::default())
+}
+
+/// [`read_image`] with explicit limits.
+pub fn read_image_with(path: &Path, opts: &ReadOptions) -> Result<Image, IoError> {
+    let (info, bytes) = read_raw(path, opts)?;
+    single_volume(path, &info)?;
+    let arr = to_memory_order(scaled_f32(&info, &bytes), info.grid.shape(), 1);
+    Volume::new(info.grid, arr.index_axis_move(Axis(0), 0)).map_err(grid_err(path))
+}
+
+/// Reads a label map: values (after scaling, if any) must be whole numbers in 0..=65535;
+/// a float file whose values are all integral is accepted. Default limits.
+pub fn read_labels(path: &Path) -> Result<LabelMap, IoError> {
+    read_labels_with(path, &ReadOptions::default())
+}
+
+/// [`read_labels`] with explicit limits.
+pub fn read_labels_with(path: &Path, opts: &ReadOptions) -> Result<LabelMap, IoError> {
+    let (info, bytes) = read_raw(path, opts)?;
+    single_volume(path, &info)?;
+    let scale = info.scaling().unwrap_or((1.0, 0.0));
+    let mut problem: Option<String> = None;
+    let values = decode(&bytes, info.datatype, info.little_endian, |raw| {
+        let v = scale.0 * raw + scale.1;
+        if problem.is_none() {
+            if !v.is_finite() || v.fract() != 0.0 {
+                problem = Some(format!("labels are not integers (found value {v})"));
+            } else if v < 0.0 {
+                problem = Some(format!("negative label {v}"));
+            } else if v > 65535.0 {
+                problem = Some(format!("label {v} exceeds 65535"));
+            }
+        }
+        v.clamp(0.0, 65535.0) as u16
+    });
+    if let Some(reason) = problem {
+        return Err(IoError::BadLabels { path: path.to_path_buf(), reason });
+    }
+    let arr: Array3<u16> = to_memory_order(values, info.grid.shape(), 1).index_axis_move(Axis(0), 0);
+    Volume::new(info.grid, arr).map_err(grid_err(path))
+}
+
+/// Reads a displacement field of shape `(nx, ny, nz, 1, 3)` or `(nx, ny, nz, 3)`.
+///
+/// Units: those recorded by sinew in `intent_name` if present, else `opts.units`, else mm.
+/// Returns the field (in voxels along i, j, k, as in memory) and the units that were used.
+pub fn read_field(path: &Path, opts: FieldReadOptions) -> Result<(Field, FieldUnits), IoError> {
+    let (info, bytes) = read_raw(path, &opts.read)?;
+    let d = &info.dims;
+    let ok = (d.len() == 5 && d[3] == 1 && d[4] == 3) || (d.len() == 4 && d[3] == 3);
+    if !ok {
+        return Err(IoError::WrongShape {
+            path: path.to_path_buf(),
+            reason: format!("dims {d:?} are not a displacement field (expected (nx, ny, nz, 1, 3) or (nx, ny, nz, 3))"),
+        });
+    }
+    let units = info.sinew_field_units().or(opts.units).unwrap_or(FieldUnits::Mm);
+    let comps = to_memory_order(scaled_f32(&info, &bytes), info.grid.shape(), 3); // (3, nx, ny, nz)
+    let field = match units {
+        FieldUnits::Voxel => Field::from_voxel_components(info.grid, comps),
+        FieldUnits::Mm => Field::from_world_mm(info.grid, &comps.permuted_axes([1, 2, 3, 0])),
+    }
+    .map_err(grid_err(path))?;
+    Ok((field, units))
+}
