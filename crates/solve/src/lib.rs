@@ -1,1 +1,18 @@
-//! placeholder
+//! The solver of sinew: objective, optimisers and the multi-resolution driver.
+//!
+//! Per level, coarse to fine: MIND-SSC descriptors of both images, then the dense
+//! displacement field `u` minimises `D(u) + λ·R(u)` (see [`kernel`]), then the Jacobian
+//! determinant of `x + u(x)` is checked, and the field is carried to the next level.
+#![deny(missing_docs)]
+
+pub mod adam;
+mod driver;
+mod error;
+pub mod kernel;
+pub mod lbfgs;
+mod params;
+pub mod svf;
+
+pub use driver::{register, EnergyReport, LevelReport, Progress, Registration, Stage};
+pub use error::SolveError;
+pub use params::{Optimiser, RegParams, Similarity, PRESETS};

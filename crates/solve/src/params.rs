@@ -1,0 +1,155 @@
+//! Registration parameters, presets and their TOML form.
+
+use serde::{Deserialize, Serialize};
+
+use crate::SolveError;
+
+/// The optimiser of the dense field.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Optimiser {
+    /// Adam ("Adam: A Method for Stochastic Optimization", ICLR 2015); fast and robust.
+    Adam,
+    /// Limited-memory BFGS with a More–Thuente line search, through the argmin crate.
+    Lbfgs,
+}
+
+/// The data term's image features.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Similarity {
+    /// Sum of squared differences of MIND-SSC descriptors (12 channels): works across
+    /// contrasts and modalities.
+    MindSsc,
+    /// Sum of squared differences of intensities, after scaling both images by the fixed
+    /// image's standard deviation: for scans of the same contrast only.
+    Ssd,
+}
+
+/// Every setting of a registration. Levels are counted from the finest (0 = the input grid).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct RegParams {
+    /// Number of pyramid levels (each halves the resolution); the coarsest is `levels − 1`.
+    pub levels: usize,
+    /// The finest level that is optimised; 1 means the field is optimised at half
+    /// resolution and then upsampled to the input grid (faster; the field is smooth anyway).
+    pub finest_level: usize,
+    /// Iterations per optimised level, coarsest first.
+    pub iterations: Vec<usize>,
+    /// Adam step size per optimised level, coarsest first, in voxels of that level.
+    pub step_size: Vec<f32>,
+    /// Diffusion weight λ (dimensionless: the regulariser is the squared mm/mm gradient).
+    pub lambda: f32,
+    /// The optimiser.
+    pub optimiser: Optimiser,
+    /// The data term.
+    pub similarity: Similarity,
+    /// MIND-SSC patch radius r (voxels of each level).
+    pub mind_radius: usize,
+    /// MIND-SSC neighbourhood dilation d (voxels of each level).
+    pub mind_dilation: usize,
+    /// Stop a level early when the total energy improved by less than this fraction over
+    /// the last 10 iterations.
+    pub tolerance: f64,
+    /// Optimise a stationary velocity field and integrate it by scaling and squaring, so the
+    /// final map is free of folds (invertible).
+    pub diffeomorphic: bool,
+    /// Gaussian smoothing (σ in voxels of each level) of the field after each level; 0 = off.
+    pub field_sigma: f32,
+}
+
+impl Default for RegParams {
+    fn default() -> Self {
+        RegParams::preset("default").expect("the default preset exists")
+    }
+}
+
+/// Names of the built-in presets.
+pub const PRESETS: &[&str] = &["fast", "default", "accurate"];
+
+impl RegParams {
+    /// A built-in preset: `fast`, `default` or `accurate`.
+    pub fn preset(name: &str) -> Option<RegParams> {
+        let base = RegParams {
+            levels: 4,
+            finest_level: 1,
+            iterations: vec![80, 60, 40],
+            step_size: vec![0.5, 0.5, 0.3],
+            lambda: 1.0,
+            optimiser: Optimiser::Adam,
+            similarity: Similarity::MindSsc,
+            mind_radius: 1,
+            mind_dilation: 2,
+            tolerance: 1e-4,
+            diffeomorphic: false,
+            field_sigma: 0.0,
+        };
+        match name {
+            "default" => Some(base),
+            "fast" => Some(RegParams { iterations: vec![60, 40, 20], ..base }),
+            "accurate" => Some(RegParams {
+                finest_level: 0,
+                iterations: vec![100, 80, 60, 30],
+                step_size: vec![0.5, 0.5, 0.3, 0.2],
+                tolerance: 1e-5,
+                ..base
+            }),
+            _ => None,
+        }
+    }
+
+    /// Number of optimised levels: `levels − finest_level`.
+    pub fn optimised_levels(&self) -> usize {
+        self.levels.saturating_sub(self.finest_level)
+    }
+
+    /// Checks ranges and lengths, naming the first problem.
+    pub fn validate(&self) -> Result<(), SolveError> {
+        let bad = |name, why: String| Err(SolveError::Parameter { name, why });
+        if self.levels == 0 || self.levels > 8 {
+            return bad("levels", format!("{} is outside 1..=8", self.levels));
+        }
+        if self.finest_level >= self.levels {
+            return bad("finest_level", format!("{} must be below levels ({})", self.finest_level, self.levels));
+        }
+        let n = self.optimised_levels();
+        if self.iterations.len() != n {
+            return bad("iterations", format!("needs {n} values (one per optimised level), got {}", self.iterations.len()));
+        }
+        if self.step_size.len() != n || self.step_size.iter().any(|s| !(s.is_finite() && *s > 0.0)) {
+            return bad("step_size", format!("needs {n} positive values, got {:?}", self.step_size));
+        }
+        if !(self.lambda.is_finite() && self.lambda >= 0.0) {
+            return bad("lambda", format!("{} must be finite and ≥ 0", self.lambda));
+        }
+        if self.mind_dilation == 0 || self.mind_dilation > 8 || self.mind_radius > 8 {
+            return bad("mind", format!("radius {} / dilation {} out of range", self.mind_radius, self.mind_dilation));
+        }
+        if !(self.tolerance.is_finite() && self.tolerance >= 0.0) {
+            return bad("tolerance", format!("{} must be ≥ 0", self.tolerance));
+        }
+        if self.diffeomorphic && self.optimiser != Optimiser::Adam {
+            return bad("diffeomorphic", "needs the adam optimiser".into());
+        }
+        if !(self.field_sigma.is_finite() && self.field_sigma >= 0.0) {
+            return bad("field_sigma", format!("{} must be ≥ 0", self.field_sigma));
+        }
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn presets_are_valid() {
+        for p in PRESETS {
+            RegParams::preset(p).unwrap().validate().unwrap();
+        }
+        let mut p = RegParams::default();
+        p.iterations.pop();
+        assert!(p.validate().is_err());
+    }
+}
