@@ -27,6 +27,153 @@ def make_feat_mind(out_dir):
     for radius, dilation in [(1, 2), (0, 1), (2, 3)]:
         desc = ref.mind_ssc(img, radius, dilation)
         np.save(os.path.join(out_dir, f"feat_mind_r{radius}_d{dilation}.npy"), desc)
+    # Two noise levels 1000x apart (variances 1e6 apart): the lower clamp 0.001*mean(V) is
+    # active in the quiet half. Files feat_mind_twolevel_{input,r1_d2}.npy.
+    quiet = rng.random((12, 8, 9))
+    quiet[:6] *= 1000.0
+    quiet = quiet.astype(np.float32)
+    np.save(os.path.join(out_dir, "feat_mind_twolevel_input.npy"), quiet)
+    np.save(os.path.join(out_dir, "feat_mind_twolevel_r1_d2.npy"), ref.mind_ssc(quiet, 1, 2))
+
+
+def _io_affines():
+    """Affines for the io fixtures: axis-aligned, oblique rotation with a mirrored k axis
+    (qfac -1), and oblique with shear (sform only)."""
+    import numpy as np
+
+    def rot(axis, deg):
+        c, s = np.cos(np.radians(deg)), np.sin(np.radians(deg))
+        p, q = (axis + 1) % 3, (axis + 2) % 3
+        r = np.eye(3)
+        r[p, p] = r[q, q] = c
+        r[p, q], r[q, p] = -s, s
+        return r
+
+    aligned = np.diag([1.5, 2.0, 3.0, 1.0])
+    aligned[:3, 3] = [-4.0, 10.0, 2.5]
+    oblique = np.eye(4)
+    oblique[:3, :3] = rot(2, 25.0) @ rot(0, -10.0) @ np.diag([0.9, 1.2, -2.0])
+    oblique[:3, 3] = [12.5, -30.0, 8.0]
+    sheared = np.eye(4)
+    sheared[:3, :3] = rot(1, 15.0) @ np.array([[1.0, 0.25, 0.0], [0.0, 1.1, 0.1], [0.0, 0.0, 2.5]])
+    sheared[:3, 3] = [-100.0, 50.0, -20.0]
+    return aligned, oblique, sheared
+
+
+def _io_save(out_dir, name, img, sidecar):
+    """Saves img (gzip mtime 0 by nibabel for .gz) and records what nibabel reads back."""
+    import os
+
+    import nibabel as nib
+    import numpy as np
+
+    path = os.path.join(out_dir, name)
+    nib.save(img, path)
+    back = nib.load(path)
+    hdr = back.header
+    sidecar[name] = {
+        "shape": [int(n) for n in back.shape],
+        "dtype": str(back.get_data_dtype().newbyteorder("=")),
+        "affine": np.asarray(back.affine, dtype=float)[:3].tolist(),
+        "best_affine": np.asarray(hdr.get_best_affine(), dtype=float)[:3].tolist(),
+        "sform_code": int(hdr["sform_code"]),
+        "qform_code": int(hdr["qform_code"]),
+        "pixdim": [float(v) for v in hdr["pixdim"]],
+        "intent_code": int(hdr["intent_code"]),
+        "little_endian": hdr.endianness == "<",
+        # scaled values, flattened in C order of (i, j, k[, ...])
+        "data": [float(v) for v in back.get_fdata(dtype=np.float64).ravel(order="C")],
+    }
+
+
+def make_io_nifti(out_dir):
+    """NIfTI-1 files written by nibabel 5.3 for the io crate, plus io_nibabel.json: what
+    nibabel reads back from each (affine, codes, dtype, scaled data in C order of (i, j, k)).
+    Covers every supported datatype, scl_slope/inter, sform only, qform only (oblique,
+    qfac -1), pixdim only, big-endian, .nii and .nii.gz, and a 5-D displacement field."""
+    import json
+    import os
+
+    import nibabel as nib
+    import numpy as np
+
+    rng = np.random.default_rng(5302)
+    aligned, oblique, sheared = _io_affines()
+    shape = (5, 4, 3)
+    sidecar = {}
+
+    ranges = {
+        "uint8": (0, 255), "int8": (-128, 127), "uint16": (0, 65535), "int16": (-32768, 32767),
+        "uint32": (0, 2**32 - 1), "int32": (-2**31, 2**31 - 1),
+    }
+    for dt in ["uint8", "int8", "uint16", "int16", "uint32", "int32", "float32", "float64"]:
+        if dt in ranges:
+            lo, hi = ranges[dt]
+            data = rng.integers(lo, hi, size=shape, endpoint=True, dtype=np.int64).astype(dt)
+            data.flat[0], data.flat[1] = lo, hi
+        else:
+            data = (rng.standard_normal(shape) * 1000.0).astype(dt)
+        img = nib.Nifti1Image(data, aligned)
+        img.header.set_data_dtype(dt)
+        img.header.set_slope_inter(1.0, 0.0)
+        for ext in ["nii", "nii.gz"] if dt in ("int16", "float32") else ["nii"]:
+            _io_save(out_dir, f"io_dtype_{dt}.{ext}", img, sidecar)
+
+    # scl_slope / scl_inter on int16
+    data = rng.integers(-500, 500, size=shape, endpoint=True).astype(np.int16)
+    img = nib.Nifti1Image(data, aligned)
+    img.header.set_data_dtype(np.int16)
+    img.header.set_slope_inter(0.25, -10.0)
+    _io_save(out_dir, "io_scaled_int16.nii", img, sidecar)
+
+    # sform only (oblique with shear), qform code 0
+    data = rng.standard_normal(shape).astype(np.float32)
+    img = nib.Nifti1Image(data, None)
+    img.set_sform(sheared, code=2)
+    img.set_qform(None, code=0)
+    _io_save(out_dir, "io_sform_only.nii.gz", img, sidecar)
+
+    # qform only (oblique rotation, mirrored third axis: qfac -1), sform code 0
+    img = nib.Nifti1Image(data, None)
+    img.set_qform(oblique, code=1)
+    img.set_sform(None, code=0)
+    _io_save(out_dir, "io_qform_only.nii", img, sidecar)
+
+    # neither: pixdim only (NIfTI method 1)
+    img = nib.Nifti1Image(data, None)
+    img.header.set_zooms((1.5, 2.0, 3.0))
+    img.set_qform(None, code=0)
+    img.set_sform(None, code=0)
+    _io_save(out_dir, "io_pixdim_only.nii", img, sidecar)
+
+    # big-endian int16
+    data16 = rng.integers(-1000, 1000, size=shape, endpoint=True).astype(">i2")
+    hdr = nib.Nifti1Header(endianness=">")
+    img = nib.Nifti1Image(data16, aligned, header=hdr)
+    img.header.set_data_dtype(">i2")
+    img.header.set_slope_inter(1.0, 0.0)
+    _io_save(out_dir, "io_bigendian_int16.nii", img, sidecar)
+
+    # label maps: float32 with integral values (accepted) and with a fraction (rejected)
+    labels = rng.integers(0, 4, size=shape).astype(np.float32)
+    labels.flat[7] = 300.0
+    _io_save(out_dir, "io_labels_float.nii", nib.Nifti1Image(labels, aligned), sidecar)
+    bad = labels.copy()
+    bad.flat[5] = 2.5
+    _io_save(out_dir, "io_labels_fraction.nii", nib.Nifti1Image(bad, aligned), sidecar)
+    neg = labels.copy()
+    neg.flat[3] = -1.0
+    _io_save(out_dir, "io_labels_negative.nii", nib.Nifti1Image(neg, aligned), sidecar)
+
+    # 5-D displacement field (nx, ny, nz, 1, 3), intent 1006, no sinew intent_name
+    field = (rng.standard_normal(shape + (1, 3)) * 2.0).astype(np.float32)
+    img = nib.Nifti1Image(field, oblique)
+    img.header.set_intent(1006)
+    _io_save(out_dir, "io_field5d.nii.gz", img, sidecar)
+
+    with open(os.path.join(out_dir, "io_nibabel.json"), "w") as f:
+        json.dump({"source": "nibabel " + nib.__version__, "files": sidecar}, f, indent=1, sort_keys=True)
+        f.write("\n")
 
 
 def make_feat_warp(out_dir):
