@@ -34,6 +34,10 @@ def make_feat_mind(out_dir):
     quiet = quiet.astype(np.float32)
     np.save(os.path.join(out_dir, "feat_mind_twolevel_input.npy"), quiet)
     np.save(os.path.join(out_dir, "feat_mind_twolevel_r1_d2.npy"), ref.mind_ssc(quiet, 1, 2))
+    # A thin volume, smaller than the dilation and the patch along two axes.
+    thin = (rng.random((2, 1, 5)) * 3.0).astype(np.float32)
+    np.save(os.path.join(out_dir, "feat_mind_thin_input.npy"), thin)
+    np.save(os.path.join(out_dir, "feat_mind_thin_r2_d3.npy"), ref.mind_ssc(thin, 2, 3))
 
 
 def _io_affines():

@@ -31,12 +31,13 @@ fn random_image(shape: [usize; 3], seed: u64) -> Image {
 fn matches_numpy_scipy_reference() {
     // Reference: scipy.ndimage.uniform_filter(mode="nearest") + numpy, scripts/ref/feat_mind_ssc.py.
     // The two-level volume has noise levels 1000× apart, so the lower clamp of V is active in
-    // a quarter of its voxels.
+    // a quarter of its voxels. The thin volume (2×1×5) is smaller than patch and dilation.
     let cases = [
         ("feat_mind_input.npy", 1, 2, "feat_mind_r1_d2.npy"),
         ("feat_mind_input.npy", 0, 1, "feat_mind_r0_d1.npy"),
         ("feat_mind_input.npy", 2, 3, "feat_mind_r2_d3.npy"),
         ("feat_mind_twolevel_input.npy", 1, 2, "feat_mind_twolevel_r1_d2.npy"),
+        ("feat_mind_thin_input.npy", 2, 3, "feat_mind_thin_r2_d3.npy"),
     ];
     for (input, r, d, expected) in cases {
         let img = load(input);
