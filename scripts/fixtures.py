@@ -79,6 +79,7 @@ def _io_save(out_dir, name, img, sidecar):
         "shape": [int(n) for n in back.shape],
         "dtype": str(back.get_data_dtype().newbyteorder("=")),
         "affine": np.asarray(back.affine, dtype=float)[:3].tolist(),
+        "axcodes": "".join(nib.aff2axcodes(back.affine)),
         "best_affine": np.asarray(hdr.get_best_affine(), dtype=float)[:3].tolist(),
         "sform_code": int(hdr["sform_code"]),
         "qform_code": int(hdr["qform_code"]),

@@ -7,15 +7,15 @@ use std::path::PathBuf;
 #[non_exhaustive]
 pub enum IoError {
     /// The operating system refused a read, write, rename or open.
-    #[error("{}: {action}: {source}", path.display())]
+    #[error("{}: {action}: {cause}", path.display())]
     Os {
         /// The file concerned.
         path: PathBuf,
         /// What was being done ("cannot open", "cannot write", ...).
         action: &'static str,
-        /// The underlying error.
-        #[source]
-        source: std::io::Error,
+        /// The underlying error (in the message, not chained, so a report stays one line
+        /// without repetition).
+        cause: std::io::Error,
     },
     /// The file is not a (single-file) NIfTI-1 file.
     #[error("{}: not a NIfTI-1 file: {reason}", path.display())]
@@ -110,13 +110,12 @@ pub enum IoError {
         path: PathBuf,
     },
     /// A geometry check failed (shape mismatch, ...).
-    #[error("{}: {source}", path.display())]
+    #[error("{}: {cause}", path.display())]
     Grid {
         /// The file concerned.
         path: PathBuf,
-        /// The geometry error.
-        #[source]
-        source: sinew_grid::GridError,
+        /// The geometry error (in the message, not chained).
+        cause: sinew_grid::GridError,
     },
 }
 
@@ -140,7 +139,7 @@ impl IoError {
         }
     }
 
-    pub(crate) fn os(path: &std::path::Path, action: &'static str, source: std::io::Error) -> IoError {
-        IoError::Os { path: path.to_path_buf(), action, source }
+    pub(crate) fn os(path: &std::path::Path, action: &'static str, cause: std::io::Error) -> IoError {
+        IoError::Os { path: path.to_path_buf(), action, cause }
     }
 }

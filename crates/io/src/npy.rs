@@ -143,5 +143,5 @@ pub fn read_npy_field(path: &Path, grid: &Grid, layout: NpyLayout) -> Result<Fie
         NpyLayout::ChannelLast => Field::from_voxel_channel_last(grid.clone(), &arr),
         NpyLayout::ChannelFirst => Field::from_voxel_components(grid.clone(), arr),
     };
-    field.map_err(|source| IoError::Grid { path: path.to_path_buf(), source })
+    field.map_err(|cause| IoError::Grid { path: path.to_path_buf(), cause })
 }

@@ -170,7 +170,7 @@ fn scaled_f32(info: &HeaderInfo, bytes: &[u8]) -> Vec<f32> {
 }
 
 fn grid_err(path: &Path) -> impl FnOnce(sinew_grid::GridError) -> IoError + '_ {
-    move |source| IoError::Grid { path: path.to_path_buf(), source }
+    move |cause| IoError::Grid { path: path.to_path_buf(), cause }
 }
 
 fn single_volume(path: &Path, info: &HeaderInfo) -> Result<(), IoError> {
