@@ -282,7 +282,7 @@ pub(crate) fn parse(path: &Path, bytes: &[u8; HEADER_SIZE], gzip: bool) -> Resul
 /// (taken as 1 mm).
 fn spatial_pixdim(path: &Path, h: &nifti::NiftiHeader, nd: usize, what: &str) -> Result<[f64; 3], IoError> {
     let mut s = [1.0; 3];
-    for d in 0..3 {
+    for (d, sd) in s.iter_mut().enumerate() {
         let v = h.pixdim[d + 1] as f64;
         if d >= nd && (v == 0.0 || !v.is_finite()) {
             continue;
@@ -293,7 +293,7 @@ fn spatial_pixdim(path: &Path, h: &nifti::NiftiHeader, nd: usize, what: &str) ->
                 format!("pixdim[{}] = {v} is zero or not finite but is needed for the {what}", d + 1),
             ));
         }
-        s[d] = v;
+        *sd = v;
     }
     Ok(s)
 }
@@ -469,8 +469,8 @@ pub(crate) fn serialize(grid: &Grid, w: &WriteHeader<'_>) -> Vec<u8> {
     put_i16(&mut b, 72, w.datatype.bits() as i16);
     let (quat, spacing, qfac, offset) = affine_to_qform(grid.affine());
     put_f32(&mut b, 76, qfac);
-    for d in 0..3 {
-        put_f32(&mut b, 80 + 4 * d, spacing[d]);
+    for (d, &sp) in spacing.iter().enumerate() {
+        put_f32(&mut b, 80 + 4 * d, sp);
     }
     for d in 3..7 {
         put_f32(&mut b, 80 + 4 * d, 1.0);
@@ -483,14 +483,13 @@ pub(crate) fn serialize(grid: &Grid, w: &WriteHeader<'_>) -> Vec<u8> {
     b[148..148 + desc.len().min(79)].copy_from_slice(&desc[..desc.len().min(79)]);
     put_i16(&mut b, 252, 1); // qform_code: scanner anatomical
     put_i16(&mut b, 254, 1); // sform_code: scanner anatomical
-    for d in 0..3 {
-        put_f32(&mut b, 256 + 4 * d, quat[d]);
-        put_f32(&mut b, 268 + 4 * d, offset[d]);
+    for (d, (&q, &o)) in quat.iter().zip(&offset).enumerate() {
+        put_f32(&mut b, 256 + 4 * d, q);
+        put_f32(&mut b, 268 + 4 * d, o);
     }
-    let m = grid.affine().m;
-    for r in 0..3 {
-        for c in 0..4 {
-            put_f32(&mut b, 280 + 16 * r + 4 * c, m[r][c]);
+    for (r, row) in grid.affine().m.iter().enumerate() {
+        for (c, &v) in row.iter().enumerate() {
+            put_f32(&mut b, 280 + 16 * r + 4 * c, v);
         }
     }
     let name = w.intent_name.as_bytes();

@@ -48,8 +48,9 @@ impl FieldUnits {
     }
 }
 
-/// gzip level for `.nii.gz` outputs: float data compresses little, so favour speed.
-const GZIP_LEVEL: u32 = 3;
+/// gzip level for `.nii.gz` outputs: float data compresses little, so favour speed (level 1
+/// wrote a 144×112×192 float image in ~0.16 s vs ~0.55 s at level 3 on the 2-core machine).
+const GZIP_LEVEL: u32 = 1;
 
 /// True when the file name ends in `.gz` (any case).
 pub(crate) fn is_gz_name(path: &Path) -> bool {

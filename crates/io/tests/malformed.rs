@@ -96,7 +96,8 @@ fn wrong_magic_and_sizes() {
 fn bad_header_fields() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    let cases: Vec<(&str, Vec<(usize, Vec<u8>)>, &str)> = vec![
+    type Case = (&'static str, Vec<(usize, Vec<u8>)>, &'static str);
+    let cases: Vec<Case> = vec![
         ("bitpix.nii", vec![(72, 16i16.to_le_bytes().to_vec())], "bitpix = 16 disagrees with datatype float32"),
         ("negdim.nii", vec![(44, (-4i16).to_le_bytes().to_vec())], "dim[2] = -4"),
         ("zerodim.nii", vec![(42, 0i16.to_le_bytes().to_vec())], "dim[1] = 0"),

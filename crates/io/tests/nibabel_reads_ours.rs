@@ -55,8 +55,7 @@ fn grid(shear: bool) -> Grid {
 fn check_affine(name: &str, got: &Value, grid: &Grid) {
     // nibabel's img.affine equals ours to 1e-5 relative (the header stores float32).
     for (r, row) in rows(got).iter().take(3).enumerate() {
-        for c in 0..4 {
-            let ours = grid.affine().m[r][c];
+        for (c, &ours) in grid.affine().m[r].iter().enumerate() {
             assert!(
                 (row[c] - ours).abs() <= 1e-5 * ours.abs().max(1.0),
                 "{name}: affine[{r}][{c}] {} vs {ours}",
