@@ -217,6 +217,14 @@ pub(crate) fn parse(path: &Path, bytes: &[u8; HEADER_SIZE], gzip: bool) -> Resul
             reason: "header-only file (magic \"ni1\"): separate .hdr/.img pairs are not supported".into(),
         });
     }
+    // The byte order is the one in which sizeof_hdr reads 348; check dim[0] in that order
+    // first (the parser guesses the order from dim[0] itself, which misreads a bad dim[0]).
+    let little = i32::from_le_bytes([bytes[0], bytes[1], bytes[2], bytes[3]]) == HEADER_SIZE as i32;
+    let dim0 =
+        if little { i16::from_le_bytes([bytes[40], bytes[41]]) } else { i16::from_be_bytes([bytes[40], bytes[41]]) };
+    if !(1..=7).contains(&dim0) {
+        return Err(bad(path, format!("dim[0] = {dim0} is not in 1..=7")));
+    }
     let h = nifti::NiftiHeader::from_reader(&bytes[..]).map_err(|_| IoError::NotNifti {
         path: path.to_path_buf(),
         reason: format!("wrong magic {:?}, expected \"n+1\\0\"", String::from_utf8_lossy(magic)),

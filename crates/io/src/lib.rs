@@ -12,6 +12,20 @@
 //!   in mm along the world axes or in voxels along `i, j, k`, recorded in `intent_name`
 //!   (`"sinew-mm"` / `"sinew-vox"`); `.npy` fields are `(nx, ny, nz, 3)` float32, voxels;
 //! - every output goes to a temporary file in the same folder, then is renamed into place.
+//!
+//! # Example
+//! ```
+//! use sinew_grid::{Grid, Volume};
+//! use sinew_io::{read_header, read_image, write_image, AffineSource};
+//!
+//! let dir = tempfile::tempdir().unwrap();
+//! let img = Volume::filled(Grid::axis_aligned([4, 3, 2], [2.0, 2.0, 3.0], [-4.0, 0.0, 9.0]), 1.5f32);
+//! let path = dir.path().join("scan.nii.gz"); // gzip because the name ends in .gz
+//! write_image(&path, &img)?;
+//! assert_eq!(read_image(&path)?.data, img.data);
+//! assert_eq!(read_header(&path)?.affine_source, AffineSource::Sform);
+//! # Ok::<(), sinew_io::IoError>(())
+//! ```
 #![deny(missing_docs)]
 
 pub mod atomic;

@@ -102,6 +102,8 @@ fn bad_header_fields() {
         ("negdim.nii", vec![(44, (-4i16).to_le_bytes().to_vec())], "dim[2] = -4"),
         ("zerodim.nii", vec![(42, 0i16.to_le_bytes().to_vec())], "dim[1] = 0"),
         ("dim0.nii", vec![(40, 0i16.to_le_bytes().to_vec())], "dim[0] = 0"),
+        ("dim0big.nii", vec![(40, 8i16.to_le_bytes().to_vec())], "dim[0] = 8 is not in 1..=7"),
+        ("dim0neg.nii", vec![(40, (-3i16).to_le_bytes().to_vec())], "dim[0] = -3"),
         ("voxoff.nii", vec![(108, 100f32.to_le_bytes().to_vec())], "vox_offset = 100"),
         ("voxoffnan.nii", vec![(108, f32::NAN.to_le_bytes().to_vec())], "vox_offset"),
         ("dtype.nii", vec![(70, 32i16.to_le_bytes().to_vec())], "unsupported datatype code 32"),
