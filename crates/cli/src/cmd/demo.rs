@@ -1,10 +1,219 @@
-//! `sinew demo` (not yet implemented).
+//! `sinew demo`: write the synthetic demo cohort (CT-like abdomens with label maps).
+//!
+//! Layout of `--out DIR`:
+//! - `subject_NN_image.nii.gz` (float32, HU) and `subject_NN_labels.nii.gz` (uint8) per subject;
+//! - `labels.json`: label value → structure name;
+//! - `cohort.json`: seed, grid and the subject files, written before the subjects so that a
+//!   rerun into the same folder with other settings is refused instead of mixing cohorts.
+//!
+//! A subject whose two files already exist, read back and sit on the expected grid is
+//! skipped, so an interrupted run resumes where it stopped. Every file is written to a
+//! temporary file beside it and renamed into place.
+
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+use anyhow::{bail, Context, Result};
+use serde::{Deserialize, Serialize};
+use sinew_phantom::{generate, PhantomParams, LABELS};
+
+use crate::ui;
 
 /// Arguments of `sinew demo`.
-#[derive(clap::Args, Debug)]
-pub struct DemoArgs {}
+#[derive(clap::Args, Debug, Clone)]
+pub struct DemoArgs {
+    /// Folder to write the cohort into (created when missing).
+    #[arg(long, short, value_name = "DIR")]
+    pub out: PathBuf,
+
+    /// Number of subjects to write (subject_00, subject_01, …).
+    #[arg(long, default_value_t = 4, value_name = "N", value_parser = clap::value_parser!(u32).range(1..=100))]
+    pub subjects: u32,
+
+    /// Cohort seed: the same seed always gives the same subjects.
+    #[arg(long, default_value_t = 7, value_name = "S")]
+    pub seed: u64,
+
+    /// 72×56×96 voxels of 4 mm instead of 144×112×192 of 2 mm (same field of view).
+    #[arg(long)]
+    pub small: bool,
+
+    /// No progress bar and no per-subject lines.
+    #[arg(long, short)]
+    pub quiet: bool,
+}
+
+/// The files of one written (or already present) subject.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct SubjectPaths {
+    /// Subject identifier, e.g. `subject_00`.
+    pub id: String,
+    /// The CT-like image (float32 HU).
+    pub image: PathBuf,
+    /// The label map (values of `labels.json`).
+    pub labels: PathBuf,
+}
+
+/// What `cohort.json` records: enough to refuse mixing two different cohorts in one folder.
+#[derive(Debug, PartialEq, Serialize, Deserialize)]
+struct CohortInfo {
+    generator: String,
+    seed: u64,
+    shape: [usize; 3],
+    spacing_mm: [f64; 3],
+    noise_hu: f32,
+    subjects: Vec<SubjectPaths>,
+}
+
+impl CohortInfo {
+    /// True when `other` describes the same generator settings (the subject count may differ).
+    fn same_settings(&self, other: &CohortInfo) -> bool {
+        self.generator == other.generator
+            && self.seed == other.seed
+            && self.shape == other.shape
+            && self.spacing_mm == other.spacing_mm
+            && self.noise_hu == other.noise_hu
+    }
+}
 
 /// Runs `sinew demo`.
-pub fn run(_args: DemoArgs) -> anyhow::Result<()> {
-    anyhow::bail!("'sinew demo' is not implemented yet")
+pub fn run(args: DemoArgs) -> Result<()> {
+    write_cohort(&args)?;
+    Ok(())
+}
+
+/// The grid and noise used for `args`.
+pub fn params(args: &DemoArgs) -> PhantomParams {
+    if args.small {
+        PhantomParams::small()
+    } else {
+        PhantomParams::default()
+    }
+}
+
+/// `labels.json`: `{"1": "liver", …}` in ascending label order.
+fn labels_json() -> String {
+    let body: Vec<String> = LABELS
+        .iter()
+        .map(|(v, name)| format!("  \"{v}\": {}", serde_json::to_string(name).expect("plain string")))
+        .collect();
+    format!("{{\n{}\n}}\n", body.join(",\n"))
+}
+
+/// Writes the cohort described by `args` into `args.out` (skipping subjects already there)
+/// and returns the files of all `args.subjects` subjects in order.
+pub fn write_cohort(args: &DemoArgs) -> Result<Vec<SubjectPaths>> {
+    let p = params(args);
+    let dir = &args.out;
+    std::fs::create_dir_all(dir).with_context(|| format!("{}: cannot create the output folder", dir.display()))?;
+    let subjects: Vec<SubjectPaths> = (0..args.subjects as usize)
+        .map(|i| {
+            let id = format!("subject_{i:02}");
+            SubjectPaths {
+                image: dir.join(format!("{id}_image.nii.gz")),
+                labels: dir.join(format!("{id}_labels.nii.gz")),
+                id,
+            }
+        })
+        .collect();
+    let info = CohortInfo {
+        generator: format!("sinew-phantom {}", env!("CARGO_PKG_VERSION")),
+        seed: args.seed,
+        shape: p.shape,
+        spacing_mm: p.spacing,
+        noise_hu: p.noise_hu,
+        subjects: subjects.clone(),
+    };
+    let info_path = dir.join("cohort.json");
+    if info_path.exists() {
+        let text =
+            std::fs::read_to_string(&info_path).with_context(|| format!("{}: cannot read", info_path.display()))?;
+        let old: CohortInfo = serde_json::from_str(&text).with_context(|| {
+            format!("{}: not a sinew cohort description; choose another --out", info_path.display())
+        })?;
+        if !old.same_settings(&info) {
+            bail!(
+                "{}: holds a cohort of seed {} on a {:?} grid of {:?} mm; refusing to mix it with seed {} on {:?} of {:?} mm \
+                 (choose another --out)",
+                dir.display(),
+                old.seed,
+                old.shape,
+                old.spacing_mm,
+                info.seed,
+                info.shape,
+                info.spacing_mm
+            );
+        }
+    }
+    let json = serde_json::to_string_pretty(&info).expect("serialisable") + "\n";
+    sinew_io::atomic::write_bytes_atomic(&info_path, json.as_bytes())?;
+    sinew_io::atomic::write_bytes_atomic(&dir.join("labels.json"), labels_json().as_bytes())?;
+
+    let grid = p.grid();
+    let ml = p.spacing.iter().product::<f64>() / 1000.0;
+    let pb = ui::progress(subjects.len() as u64, "writing demo cohort", args.quiet);
+    let say = |line: String| {
+        if !args.quiet {
+            pb.suspend(|| println!("{line}"));
+        }
+    };
+    for (i, s) in subjects.iter().enumerate() {
+        pb.set_message(s.id.clone());
+        if present(s, &grid) {
+            say(format!("{}  exists, skipped", s.id));
+            pb.inc(1);
+            continue;
+        }
+        let t = Instant::now();
+        let subject = generate(args.seed, i, &p);
+        sinew_io::write_image(&s.image, &subject.image)?;
+        sinew_io::write_labels(&s.labels, &subject.labels)?;
+        let counts = subject.labels.label_counts();
+        let volumes: Vec<String> = LABELS
+            .iter()
+            .map(|(v, name)| {
+                let n = counts.iter().find(|c| c.0 == *v).map_or(0, |c| c.1);
+                format!("{name} {:.0}", n as f64 * ml)
+            })
+            .collect();
+        let [nx, ny, nz] = p.shape;
+        let [sx, sy, sz] = p.spacing;
+        say(format!(
+            "{}  {nx}x{ny}x{nz} @ {sx}x{sy}x{sz} mm  {:.1} s  ml: {}",
+            s.id,
+            t.elapsed().as_secs_f64(),
+            volumes.join(", ")
+        ));
+        pb.inc(1);
+    }
+    pb.finish_and_clear();
+    if !args.quiet {
+        println!("wrote {} subjects (seed {}) to {}", subjects.len(), args.seed, dir.display());
+    }
+    Ok(subjects)
+}
+
+/// True when both files of `s` exist, read back completely and sit on `grid`.
+fn present(s: &SubjectPaths, grid: &sinew_grid::Grid) -> bool {
+    let ok = |path: &Path, read: &dyn Fn(&Path) -> Option<sinew_grid::Grid>| {
+        path.is_file() && read(path).is_some_and(|g| g.ensure_same(grid).is_ok())
+    };
+    ok(&s.image, &|p| sinew_io::read_image(p).ok().map(|v| v.grid))
+        && ok(&s.labels, &|p| sinew_io::read_labels(p).ok().map(|v| v.grid))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn labels_json_lists_every_label_in_order() {
+        let v: serde_json::Value = serde_json::from_str(&labels_json()).unwrap();
+        let obj = v.as_object().unwrap();
+        assert_eq!(obj.len(), LABELS.len());
+        for (val, name) in LABELS {
+            assert_eq!(obj[&val.to_string()], *name);
+        }
+        assert!(labels_json().find("\"2\"").unwrap() < labels_json().find("\"10\"").unwrap());
+    }
 }
