@@ -1,6 +1,6 @@
 //! Separable Gaussian smoothing with spacing-aware widths.
 
-use ndarray::{Array3, Axis};
+use ndarray::Array3;
 use rayon::prelude::*;
 
 /// Normalised 1-D Gaussian kernel `g[t] ∝ exp(−t²/(2σ²))` for `t = −r..=r`, `r = ⌈3σ⌉`,
@@ -28,64 +28,83 @@ pub fn gaussian_smooth(data: &mut Array3<f32>, spacing: [f64; 3], sigma_mm: f64)
 /// Convolves `data` along `axis` with the odd-length kernel `k` (centre at `k.len()/2`),
 /// clamping indices at the borders. Results do not depend on the thread count.
 pub fn convolve_axis(data: &mut Array3<f32>, axis: usize, k: &[f32]) {
+    assert!(data.is_standard_layout(), "standard layout");
+    let shape = [data.shape()[0], data.shape()[1], data.shape()[2]];
+    let mut scratch = Vec::new();
+    convolve_axis_slice(data.as_slice_mut().expect("standard layout"), shape, axis, k, &mut scratch);
+}
+
+/// [`convolve_axis`] on a standard-order slice of shape `shape`. `scratch` is grown to
+/// `data.len()` when `axis` is 0 and reused between calls, so repeated smoothing (once per
+/// optimiser iteration) does not allocate. Every inner loop runs over contiguous rows.
+pub fn convolve_axis_slice(data: &mut [f32], shape: [usize; 3], axis: usize, k: &[f32], scratch: &mut Vec<f32>) {
+    assert!(k.len() % 2 == 1, "odd kernel");
+    assert_eq!(data.len(), shape.iter().product::<usize>(), "slice length matches the shape");
     if k.len() == 1 && k[0] == 1.0 {
         return;
     }
-    assert!(data.is_standard_layout() && k.len() % 2 == 1, "standard layout and odd kernel");
-    let shape = data.shape().to_vec();
-    let r = (k.len() / 2) as isize;
-    let n = shape[axis] as isize;
-    if axis == 0 {
-        // Work per j-row: gather lines along i.
-        let src = data.clone();
-        let (ny, nz) = (shape[1], shape[2]);
-        data.axis_iter_mut(Axis(0)).into_par_iter().enumerate().for_each(|(i, mut slab)| {
-            let out = slab.as_slice_mut().unwrap();
-            let s = src.as_slice().unwrap();
-            out.iter_mut().for_each(|v| *v = 0.0);
-            for (t, &w) in k.iter().enumerate() {
-                let ii = (i as isize + t as isize - r).clamp(0, n - 1) as usize;
-                let row = &s[ii * ny * nz..(ii + 1) * ny * nz];
-                for (o, &v) in out.iter_mut().zip(row) {
-                    *o += w * v;
-                }
-            }
-        });
-        return;
-    }
-    // Axes 1 and 2 stay inside an i slab.
-    data.axis_iter_mut(Axis(0)).into_par_iter().for_each(|mut slab| {
-        let (ny, nz) = (shape[1], shape[2]);
-        let s = slab.as_slice_mut().unwrap();
-        if axis == 2 {
-            let mut line = vec![0.0f32; nz];
-            for j in 0..ny {
-                let row = &mut s[j * nz..(j + 1) * nz];
-                line.copy_from_slice(row);
-                for (z, o) in row.iter_mut().enumerate() {
-                    let mut acc = 0.0;
-                    for (t, &w) in k.iter().enumerate() {
-                        let zz = (z as isize + t as isize - r).clamp(0, n - 1) as usize;
-                        acc += w * line[zz];
-                    }
-                    *o = acc;
-                }
-            }
-        } else {
-            let copy = s.to_vec();
-            for j in 0..ny {
-                let row = &mut s[j * nz..(j + 1) * nz];
-                row.iter_mut().for_each(|v| *v = 0.0);
+    let [nx, ny, nz] = shape;
+    let r = k.len() / 2;
+    match axis {
+        2 => data.par_chunks_mut(nz).for_each_init(|| vec![0.0f32; nz + 2 * r], |line, row| convolve_line(row, line, k)),
+        1 => data.par_chunks_mut(ny * nz).for_each_init(
+            || vec![0.0f32; ny * nz],
+            |copy, slab| {
+                copy.copy_from_slice(slab);
+                rows_weighted_sum(slab, copy, ny, nz, k);
+            },
+        ),
+        _ => {
+            scratch.resize(data.len(), 0.0);
+            scratch.copy_from_slice(data);
+            let plane = ny * nz;
+            let src: &[f32] = scratch;
+            data.par_chunks_mut(plane).enumerate().for_each(|(i, out)| {
+                out.iter_mut().for_each(|v| *v = 0.0);
                 for (t, &w) in k.iter().enumerate() {
-                    let jj = (j as isize + t as isize - r).clamp(0, n - 1) as usize;
-                    let src = &copy[jj * nz..(jj + 1) * nz];
-                    for (o, &v) in row.iter_mut().zip(src) {
+                    let ii = (i + t).saturating_sub(r).min(nx - 1);
+                    for (o, &v) in out.iter_mut().zip(&src[ii * plane..(ii + 1) * plane]) {
                         *o += w * v;
                     }
                 }
+            });
+        }
+    }
+}
+
+/// `out` row `j` = `Σ_t k[t] · src` row `clamp(j + t − r)`, rows of length `len`.
+fn rows_weighted_sum(out: &mut [f32], src: &[f32], rows: usize, len: usize, k: &[f32]) {
+    let r = k.len() / 2;
+    for j in 0..rows {
+        let o = &mut out[j * len..(j + 1) * len];
+        o.iter_mut().for_each(|v| *v = 0.0);
+        for (t, &w) in k.iter().enumerate() {
+            let jj = (j + t).saturating_sub(r).min(rows - 1);
+            for (ov, &v) in o.iter_mut().zip(&src[jj * len..(jj + 1) * len]) {
+                *ov += w * v;
             }
         }
-    });
+    }
+}
+
+/// Convolves the contiguous `data` with `k`, using `line` (length `data.len() + 2r`) as the
+/// edge-padded copy.
+#[inline]
+fn convolve_line(data: &mut [f32], line: &mut [f32], k: &[f32]) {
+    let r = k.len() / 2;
+    let n = data.len();
+    line[r..r + n].copy_from_slice(data);
+    let (first, last) = (data[0], data[n - 1]);
+    line[..r].iter_mut().for_each(|v| *v = first);
+    line[r + n..].iter_mut().for_each(|v| *v = last);
+    for (t, o) in data.iter_mut().enumerate() {
+        let window = &line[t..t + k.len()];
+        let mut acc = 0.0f32;
+        for (w, v) in k.iter().zip(window) {
+            acc += w * v;
+        }
+        *o = acc;
+    }
 }
 
 #[cfg(test)]

@@ -217,37 +217,60 @@ fn optimise_level(
     if !start.total.is_finite() {
         return Err(SolveError::Diverged { level });
     }
-    let mut history: Vec<f64> = Vec::with_capacity(iters + 1);
-    history.push(start.total);
     let mut iterations = 0;
     let mut evaluations = 1;
     match params.optimiser {
         Optimiser::Adam => {
+            // Smoothed parametrisation: variable = init + G_σ·θ with θ = 0 at the start of the
+            // level, so the gradient w.r.t. θ is G_σ·∂E/∂variable (G_σ is a Gaussian, σ =
+            // `update_sigma` voxels): a preconditioner that keeps Adam's per-voxel steps smooth.
+            let init = theta;
             let mut adam = Adam::new(n3, lr);
-            // With `diffeomorphic`, theta holds the velocity and `u` its exponential.
+            let mut th = vec![0.0f32; n3];
+            let mut cur = init.clone();
+            // With `diffeomorphic`, `cur` holds the velocity and `u` its exponential.
             let mut u = Field::zeros(grid.clone());
             let mut scratch = Field::zeros(grid.clone());
+            let mut best = f64::INFINITY;
+            let mut since_best = 0usize;
+            // Adam is scale-invariant but for ε: give it the gradient of the per-voxel energy.
+            let n_vox = (n3 / 3) as f32;
+            let kernel = sinew_grid::smooth::gaussian_kernel(params.update_sigma as f64);
+            let mut conv_scratch = Vec::new();
             for it in 0..iters {
                 let energy = if params.diffeomorphic {
-                    svf::exp_into(&theta, &mut u, &mut scratch);
+                    svf::exp_into(&cur, &mut u, &mut scratch);
                     problem.evaluate(as_slice(&u), &mut grad, &mut sums)
                 } else {
-                    problem.evaluate(as_slice(&theta), &mut grad, &mut sums)
+                    problem.evaluate(as_slice(&cur), &mut grad, &mut sums)
                 };
                 evaluations += 1;
                 if !energy.total.is_finite() {
                     return Err(SolveError::Diverged { level });
                 }
-                history.push(energy.total);
                 // Gradient w.r.t. the velocity approximated by the gradient w.r.t. the
                 // displacement (common practice for stationary velocity fields).
-                adam.step(theta.data.as_slice_mut().expect("standard layout"), &grad);
+                smooth_components(&mut grad, grid.shape(), &kernel, &mut conv_scratch);
+                grad.iter_mut().for_each(|g| *g *= n_vox);
+                adam.step(&mut th, &grad);
+                cur.data.as_slice_mut().expect("standard layout").copy_from_slice(&th);
+                smooth_components(cur.data.as_slice_mut().expect("standard layout"), grid.shape(), &kernel, &mut conv_scratch);
+                cur.data += &init.data;
                 iterations = it + 1;
                 observer(Progress { level, stage: Stage::Optimise, iteration: iterations, iterations: iters });
-                if converged(&history, params.tolerance) {
-                    break;
+                // Stop when the best energy has not improved by `tolerance` (relative) for 10
+                // iterations.
+                if energy.total < best * (1.0 - params.tolerance) {
+                    best = energy.total;
+                    since_best = 0;
+                } else {
+                    since_best += 1;
+                    if since_best >= 10 {
+                        break;
+                    }
                 }
             }
+            theta = cur;
         }
         Optimiser::Lbfgs => {
             let init_vec = theta.data.as_slice().expect("standard layout").to_vec();
@@ -268,16 +291,14 @@ fn optimise_level(
     Ok(LevelOutcome { variable: theta, field, iterations, evaluations: evaluations + 1, start, end })
 }
 
-/// True when the total energy improved by less than `tol` (relative) over the last 10
-/// iterations.
-fn converged(history: &[f64], tol: f64) -> bool {
-    let n = history.len();
-    if n < 12 || tol <= 0.0 {
-        return false;
+/// Gaussian smoothing (σ in voxels) of the three components of a component-first buffer.
+fn smooth_components(buf: &mut [f32], shape: [usize; 3], kernel: &[f32], scratch: &mut Vec<f32>) {
+    let n: usize = shape.iter().product();
+    for comp in buf.chunks_exact_mut(n) {
+        for axis in 0..3 {
+            sinew_grid::smooth::convolve_axis_slice(comp, shape, axis, kernel, scratch);
+        }
     }
-    let old = history[n - 11];
-    let new = history[n - 1];
-    (old - new) < tol * old.abs().max(1e-12)
 }
 
 /// The displacement of the optimised variable: itself, or `exp(v)` when diffeomorphic.

@@ -57,6 +57,9 @@ pub struct RegParams {
     pub diffeomorphic: bool,
     /// Gaussian smoothing (σ in voxels of each level) of the field after each level; 0 = off.
     pub field_sigma: f32,
+    /// Adam only: σ (voxels of each level) of the Gaussian that smooths each update
+    /// (the field is `init + G_σ·θ`); 0 = plain per-voxel Adam.
+    pub update_sigma: f32,
 }
 
 impl Default for RegParams {
@@ -84,6 +87,7 @@ impl RegParams {
             tolerance: 1e-4,
             diffeomorphic: false,
             field_sigma: 0.0,
+            update_sigma: 1.0,
         };
         match name {
             "default" => Some(base),
@@ -131,6 +135,9 @@ impl RegParams {
         }
         if self.diffeomorphic && self.optimiser != Optimiser::Adam {
             return bad("diffeomorphic", "needs the adam optimiser".into());
+        }
+        if !(self.update_sigma.is_finite() && self.update_sigma >= 0.0) {
+            return bad("update_sigma", format!("{} must be ≥ 0", self.update_sigma));
         }
         if !(self.field_sigma.is_finite() && self.field_sigma >= 0.0) {
             return bad("field_sigma", format!("{} must be ≥ 0", self.field_sigma));

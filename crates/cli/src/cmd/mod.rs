@@ -1,4 +1,5 @@
 //! One module per subcommand.
+pub mod common;
 pub mod demo;
 pub mod info;
 pub mod register;

@@ -1,10 +1,452 @@
-//! `sinew register` (not yet implemented).
+//! `sinew register`: one pair, from files to field, warped scans, Jacobian and report.
+
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+use anyhow::Context;
+use clap::{Args, ValueEnum};
+use serde::Serialize;
+use sinew_grid::{resample, Border, Field, Image, LabelMap};
+use sinew_io::FieldUnits;
+use sinew_solve::{Optimiser, RegParams, Registration, Similarity, Stage};
+
+use crate::cmd::common::{self, Inputs};
+use crate::ui;
+
+/// Units of the displacement vectors in written field files.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum UnitsArg {
+    /// Millimetres along the world (scanner) axes: the NIfTI convention.
+    Mm,
+    /// Voxels along the array axes i, j, k: what most Python code expects.
+    Voxel,
+}
+
+impl From<UnitsArg> for FieldUnits {
+    fn from(u: UnitsArg) -> Self {
+        match u {
+            UnitsArg::Mm => FieldUnits::Mm,
+            UnitsArg::Voxel => FieldUnits::Voxel,
+        }
+    }
+}
 
 /// Arguments of `sinew register`.
-#[derive(clap::Args, Debug)]
-pub struct RegisterArgs {}
+#[derive(Args, Debug, Clone)]
+#[command(after_long_help = REGISTER_EXAMPLES)]
+pub struct RegisterArgs {
+    /// The fixed scan (NIfTI): the field lives on its grid.
+    #[arg(long, short = 'f', value_name = "NII")]
+    pub fixed: PathBuf,
+    /// The moving scan (NIfTI); a scan on another grid is brought onto the fixed grid
+    /// through world coordinates first.
+    #[arg(long, short = 'm', value_name = "NII")]
+    pub moving: PathBuf,
+    /// Output folder (created if needed); existing outputs in it are replaced atomically.
+    #[arg(long, short = 'o', value_name = "DIR")]
+    pub out: PathBuf,
+    /// Label map of the fixed scan: enables Dice before/after in the report.
+    #[arg(long, value_name = "NII")]
+    pub fixed_labels: Option<PathBuf>,
+    /// Label map of the moving scan: warped into `warped_labels.nii.gz`.
+    #[arg(long, value_name = "NII")]
+    pub moving_labels: Option<PathBuf>,
+    /// Mask on the fixed grid (non-zero = inside): only voxels inside drive the data term.
+    #[arg(long, value_name = "NII")]
+    pub mask: Option<PathBuf>,
+    /// Units of the vectors in `field.nii.gz`.
+    #[arg(long, value_enum, default_value_t = UnitsArg::Mm)]
+    pub field_units: UnitsArg,
+    /// Also write `field.npy` ((nx, ny, nz, 3) float32, voxel units).
+    #[arg(long)]
+    pub npy: bool,
+    /// Parameter preset: fast, default or accurate.
+    #[arg(long, default_value = "default", value_parser = clap::builder::PossibleValuesParser::new(sinew_solve::PRESETS))]
+    pub preset: String,
+    /// A TOML file of parameters (any field of the preset; unknown keys are errors). Applied
+    /// over the preset; the flags below are applied over both.
+    #[arg(long, value_name = "TOML")]
+    pub config: Option<PathBuf>,
+    /// Diffusion weight λ (smoothness; larger = smoother field).
+    #[arg(long)]
+    pub lambda: Option<f32>,
+    /// Iterations per optimised level, coarsest first, e.g. `80,60,40`.
+    #[arg(long, value_delimiter = ',')]
+    pub iterations: Option<Vec<usize>>,
+    /// Number of pyramid levels.
+    #[arg(long)]
+    pub levels: Option<usize>,
+    /// Finest optimised level (0 = full resolution, 1 = half resolution then upsampled).
+    #[arg(long)]
+    pub finest_level: Option<usize>,
+    /// Optimiser: adam or lbfgs.
+    #[arg(long, value_enum)]
+    pub optimiser: Option<OptimiserArg>,
+    /// Data term: mind-ssc (any contrast) or ssd (same contrast only).
+    #[arg(long, value_enum)]
+    pub similarity: Option<SimilarityArg>,
+    /// Keep the map free of folds: optimise a stationary velocity field and integrate it by
+    /// scaling and squaring.
+    #[arg(long)]
+    pub diffeomorphic: bool,
+    /// Worker threads (default: all cores).
+    #[arg(long, short = 'j')]
+    pub threads: Option<usize>,
+    /// No progress bar and no summary.
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+const REGISTER_EXAMPLES: &str = "Examples:
+  sinew register -f demo-data/subject_00_image.nii.gz -m demo-data/subject_01_image.nii.gz \\
+      --fixed-labels demo-data/subject_00_labels.nii.gz \\
+      --moving-labels demo-data/subject_01_labels.nii.gz -o out/pair_00_01
+  sinew register -f a.nii.gz -m b.nii.gz -o out --preset accurate --diffeomorphic
+  sinew register -f a.nii.gz -m b.nii.gz -o out --config params.toml --field-units voxel
+
+Outputs in DIR: field.nii.gz (displacement, pull: warped(x) = moving(x + u(x))),
+warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz, report.json.";
+
+/// `--optimiser` values.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum OptimiserArg {
+    /// Adam (default).
+    Adam,
+    /// L-BFGS through argmin.
+    Lbfgs,
+}
+
+/// `--similarity` values.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum SimilarityArg {
+    /// MIND-SSC descriptors.
+    MindSsc,
+    /// Intensity SSD.
+    Ssd,
+}
+
+impl RegisterArgs {
+    /// The parameters: preset, then config file, then flags.
+    pub fn params(&self) -> anyhow::Result<RegParams> {
+        let mut p = RegParams::preset(&self.preset).context("unknown preset")?;
+        if let Some(path) = &self.config {
+            let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
+            let base = toml::Value::try_from(&p).context("serialising the preset")?;
+            let over: toml::Value =
+                toml::from_str(&text).with_context(|| format!("{}: not valid TOML", path.display()))?;
+            let merged = merge_toml(base, over);
+            p = merged.try_into().map_err(|e: toml::de::Error| {
+                anyhow::anyhow!("{}: {}", path.display(), e.message().replace('\n', " "))
+            })?;
+        }
+        if let Some(l) = self.levels {
+            p.levels = l;
+        }
+        if let Some(f) = self.finest_level {
+            p.finest_level = f;
+        }
+        if self.levels.is_some() || self.finest_level.is_some() {
+            // Keep per-level lists consistent with a changed level count.
+            let n = p.optimised_levels();
+            resize_last(&mut p.iterations, n);
+            resize_last(&mut p.step_size, n);
+        }
+        if let Some(l) = self.lambda {
+            p.lambda = l;
+        }
+        if let Some(it) = &self.iterations {
+            p.iterations = it.clone();
+        }
+        if let Some(o) = self.optimiser {
+            p.optimiser = match o {
+                OptimiserArg::Adam => Optimiser::Adam,
+                OptimiserArg::Lbfgs => Optimiser::Lbfgs,
+            };
+        }
+        if let Some(s) = self.similarity {
+            p.similarity = match s {
+                SimilarityArg::MindSsc => Similarity::MindSsc,
+                SimilarityArg::Ssd => Similarity::Ssd,
+            };
+        }
+        if self.diffeomorphic {
+            p.diffeomorphic = true;
+        }
+        p.validate().context("parameters")?;
+        Ok(p)
+    }
+}
+
+/// Pads a per-level list by repeating its last value, or truncates it from the front
+/// (dropping the coarsest levels), to `n` entries.
+fn resize_last<T: Clone>(v: &mut Vec<T>, n: usize) {
+    while v.len() > n {
+        v.remove(0);
+    }
+    while v.len() < n {
+        let last = v.first().cloned().expect("non-empty per-level list");
+        v.insert(0, last);
+    }
+}
+
+fn merge_toml(base: toml::Value, over: toml::Value) -> toml::Value {
+    match (base, over) {
+        (toml::Value::Table(mut b), toml::Value::Table(o)) => {
+            for (k, v) in o {
+                let merged = match b.remove(&k) {
+                    Some(old) => merge_toml(old, v),
+                    None => v,
+                };
+                b.insert(k, merged);
+            }
+            toml::Value::Table(b)
+        }
+        (_, o) => o,
+    }
+}
+
+/// The JSON report of one registration.
+#[derive(Serialize)]
+pub struct Report {
+    /// Always first: how to use (and not use) the result.
+    pub caution: &'static str,
+    /// sinew's version.
+    pub sinew_version: &'static str,
+    /// Inputs with their SHA-256.
+    pub inputs: Vec<common::InputRecord>,
+    /// The parameters used.
+    pub params: RegParams,
+    /// Units of the vectors in field.nii.gz.
+    pub field_units: UnitsArg,
+    /// Worker threads.
+    pub threads: usize,
+    /// Whether the moving scan had to be resampled onto the fixed grid first.
+    pub moving_resampled: bool,
+    /// Stage timings in seconds.
+    pub timings: Timings,
+    /// Per-level reports (coarsest first).
+    pub levels: Vec<sinew_solve::LevelReport>,
+    /// Jacobian statistics of the final field on the fixed grid.
+    pub jacobian: sinew_transform::JacobianStats,
+    /// Dice per label before and after (with both label maps).
+    pub dice: Option<common::DiceReport>,
+    /// Files written.
+    pub outputs: Vec<String>,
+}
+
+/// Stage timings in seconds.
+#[derive(Serialize, Default)]
+pub struct Timings {
+    /// Reading the inputs.
+    pub load_s: f64,
+    /// Bringing the moving scan onto the fixed grid.
+    pub resample_s: f64,
+    /// Building the pyramids.
+    pub pyramid_s: f64,
+    /// Descriptors, all levels.
+    pub descriptors_s: f64,
+    /// Optimisation, all levels.
+    pub optimise_s: f64,
+    /// Per-level Jacobian checks.
+    pub level_jacobian_s: f64,
+    /// Upsampling the field to the input grid.
+    pub upsample_s: f64,
+    /// Loading to field in memory.
+    pub register_s: f64,
+    /// Warping the scan and labels.
+    pub warp_s: f64,
+    /// Final Jacobian and statistics.
+    pub jacobian_s: f64,
+    /// Writing the outputs.
+    pub write_s: f64,
+    /// Wall time of the whole command.
+    pub total_s: f64,
+}
 
 /// Runs `sinew register`.
-pub fn run(_args: RegisterArgs) -> anyhow::Result<()> {
-    anyhow::bail!("'sinew register' is not implemented yet")
+pub fn run(args: RegisterArgs) -> anyhow::Result<()> {
+    let params = args.params()?;
+    common::with_threads(args.threads, || run_pair(&args, &params).map(|_| ()))
+}
+
+/// Registers one pair and writes its outputs; returns the report (used by the demo too).
+pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Report> {
+    let t_all = Instant::now();
+    let inputs = Inputs::load(
+        &args.fixed,
+        &args.moving,
+        args.fixed_labels.as_deref(),
+        args.moving_labels.as_deref(),
+        args.mask.as_deref(),
+    )?;
+    let mut timings = Timings { load_s: t_all.elapsed().as_secs_f64(), ..Timings::default() };
+    let out_paths = OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy);
+    common::prepare_out_dir(&args.out, &out_paths.all(), &inputs.paths())?;
+
+    let t = Instant::now();
+    let moving_resampled = !inputs.fixed.grid.same_as(&inputs.moving.grid, 1e-3);
+    let moving_on_fixed = if moving_resampled {
+        resample::resample_image(&inputs.moving, &inputs.fixed.grid, Border::Nearest)
+    } else {
+        inputs.moving.clone()
+    };
+    timings.resample_s = t.elapsed().as_secs_f64();
+
+    let reg = register_with_progress(&inputs.fixed, &moving_on_fixed, inputs.mask.as_ref(), params, args)?;
+    timings.pyramid_s = reg.pyramid_s;
+    timings.upsample_s = reg.upsample_s;
+    for l in &reg.levels {
+        timings.descriptors_s += l.descriptors_s;
+        timings.optimise_s += l.optimise_s;
+        timings.level_jacobian_s += l.jacobian_s;
+    }
+    timings.register_s = t_all.elapsed().as_secs_f64();
+
+    let t = Instant::now();
+    let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
+    let warped = sinew_transform::warp_image_from(&inputs.moving, &reg.field, Border::Constant(pad));
+    let warped_labels = inputs.moving_labels.as_ref().map(|l| sinew_transform::warp_labels_from(l, &reg.field));
+    timings.warp_s = t.elapsed().as_secs_f64();
+
+    let t = Instant::now();
+    let jacdet = sinew_transform::jacobian_determinant(&reg.field);
+    let jacobian = sinew_transform::jacobian_stats(&jacdet, None);
+    timings.jacobian_s = t.elapsed().as_secs_f64();
+
+    let dice = match (&inputs.fixed_labels, &inputs.moving_labels, &warped_labels) {
+        (Some(f), Some(m), Some(w)) => Some(common::dice_report(f, m, w)?),
+        _ => None,
+    };
+
+    let t = Instant::now();
+    write_outputs(&out_paths, &reg.field, args.field_units.into(), &warped, warped_labels.as_ref(), &jacdet)?;
+    timings.write_s = t.elapsed().as_secs_f64();
+    timings.total_s = t_all.elapsed().as_secs_f64();
+    let report = Report {
+        caution: common::CAUTION,
+        sinew_version: env!("CARGO_PKG_VERSION"),
+        inputs: inputs.records()?,
+        params: params.clone(),
+        field_units: args.field_units,
+        threads: rayon::current_num_threads(),
+        moving_resampled,
+        timings,
+        levels: reg.levels,
+        jacobian,
+        dice,
+        outputs: out_paths.all().iter().map(|p| p.display().to_string()).collect(),
+    };
+    // The report is written last: its presence marks a complete output folder.
+    common::write_json(&out_paths.report, &report)?;
+    if !args.quiet {
+        print_summary(&args.out, &report);
+    }
+    Ok(report)
+}
+
+fn register_with_progress(
+    fixed: &Image,
+    moving: &Image,
+    mask: Option<&LabelMap>,
+    params: &RegParams,
+    args: &RegisterArgs,
+) -> anyhow::Result<Registration> {
+    let total: usize = params.iterations.iter().sum();
+    let pb = ui::progress(total as u64, "registering", args.quiet);
+    let mut done_before = 0usize;
+    let mut last_level = usize::MAX;
+    let mut level_iters = 0usize;
+    let reg = sinew_solve::register(fixed, moving, mask, params, &mut |p| {
+        if p.level != last_level && p.stage == Stage::Descriptors {
+            done_before += level_iters;
+            level_iters = 0;
+            last_level = p.level;
+        }
+        let stage = match p.stage {
+            Stage::Pyramid => "pyramid",
+            Stage::Descriptors => "descriptors",
+            Stage::Optimise => {
+                level_iters = p.iterations;
+                pb.set_position((done_before + p.iteration) as u64);
+                "optimise"
+            }
+            Stage::Jacobian => "jacobian",
+        };
+        pb.set_message(format!("level {} {}", p.level, stage));
+    })
+    .with_context(|| format!("registering {} to {}", args.moving.display(), args.fixed.display()))?;
+    pb.finish_and_clear();
+    Ok(reg)
+}
+
+struct OutPaths {
+    field: PathBuf,
+    npy: Option<PathBuf>,
+    warped: PathBuf,
+    warped_labels: Option<PathBuf>,
+    jacdet: PathBuf,
+    report: PathBuf,
+}
+
+impl OutPaths {
+    fn new(dir: &Path, labels: bool, npy: bool) -> OutPaths {
+        OutPaths {
+            field: dir.join("field.nii.gz"),
+            npy: npy.then(|| dir.join("field.npy")),
+            warped: dir.join("warped.nii.gz"),
+            warped_labels: labels.then(|| dir.join("warped_labels.nii.gz")),
+            jacdet: dir.join("jacdet.nii.gz"),
+            report: dir.join("report.json"),
+        }
+    }
+
+    fn all(&self) -> Vec<PathBuf> {
+        let mut v = vec![self.field.clone()];
+        v.extend(self.npy.clone());
+        v.push(self.warped.clone());
+        v.extend(self.warped_labels.clone());
+        v.push(self.jacdet.clone());
+        v.push(self.report.clone());
+        v
+    }
+}
+
+fn write_outputs(
+    p: &OutPaths,
+    field: &Field,
+    units: FieldUnits,
+    warped: &Image,
+    warped_labels: Option<&LabelMap>,
+    jacdet: &Image,
+) -> anyhow::Result<()> {
+    sinew_io::write_field(&p.field, field, units)?;
+    if let Some(npy) = &p.npy {
+        sinew_io::write_npy_field(npy, field)?;
+    }
+    sinew_io::write_image(&p.warped, warped)?;
+    if let (Some(path), Some(l)) = (&p.warped_labels, warped_labels) {
+        sinew_io::write_labels(path, l)?;
+    }
+    sinew_io::write_image(&p.jacdet, jacdet)?;
+    Ok(())
+}
+
+fn print_summary(out: &Path, r: &Report) {
+    let j = &r.jacobian;
+    println!(
+        "registered in {:.2} s (total {:.2} s, {} threads); folding {:.4} % ({} voxels), SDlogJ {:.3}, det [{:.3}, {:.3}]",
+        r.timings.register_s,
+        r.timings.total_s,
+        r.threads,
+        100.0 * j.folding_fraction,
+        j.folded_voxels,
+        j.sd_log_j,
+        j.min,
+        j.max
+    );
+    if let Some(d) = &r.dice {
+        println!("mean Dice {:.3} -> {:.3} over {} labels", d.mean_before, d.mean_after, d.labels.len());
+    }
+    println!("outputs in {}", out.display());
 }

@@ -1,0 +1,194 @@
+//! What several subcommands share: loading and checking inputs, output folders, JSON, Dice.
+
+use std::collections::BTreeMap;
+use std::io::Read;
+use std::path::{Path, PathBuf};
+
+use anyhow::{bail, Context};
+use serde::Serialize;
+use sha2::{Digest, Sha256};
+use sinew_grid::{resample, Image, LabelMap};
+
+/// The caution every report carries.
+pub const CAUTION: &str = "Research use only; not for diagnosis or treatment. Check every registration visually \
+(a qualified person) before using it; local regulations and clinical practice govern any clinical use.";
+
+/// The inputs of one pair, read and checked.
+pub struct Inputs {
+    /// Fixed scan.
+    pub fixed: Image,
+    /// Moving scan (on its own grid).
+    pub moving: Image,
+    /// Fixed labels (on the fixed grid).
+    pub fixed_labels: Option<LabelMap>,
+    /// Moving labels (on the moving grid).
+    pub moving_labels: Option<LabelMap>,
+    /// Mask on the fixed grid.
+    pub mask: Option<LabelMap>,
+    paths: Vec<(&'static str, PathBuf)>,
+}
+
+/// One input file in a report.
+#[derive(Serialize, Clone)]
+pub struct InputRecord {
+    /// Its role (fixed, moving, ...).
+    pub role: &'static str,
+    /// Its path as given.
+    pub path: String,
+    /// SHA-256 of its bytes.
+    pub sha256: String,
+}
+
+impl Inputs {
+    /// Reads every input and checks that labels and masks match their scan's grid and that
+    /// the scans hold no NaN or infinite voxels.
+    pub fn load(
+        fixed: &Path,
+        moving: &Path,
+        fixed_labels: Option<&Path>,
+        moving_labels: Option<&Path>,
+        mask: Option<&Path>,
+    ) -> anyhow::Result<Inputs> {
+        let fixed_img = read_finite_image(fixed)?;
+        let moving_img = read_finite_image(moving)?;
+        let fixed_labels_map = fixed_labels.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
+        let moving_labels_map = moving_labels.map(|p| read_labels_on(p, &moving_img, moving)).transpose()?;
+        let mask_map = mask.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
+        if let Some(m) = &mask_map {
+            if m.as_slice().iter().all(|&v| v == 0) {
+                bail!("{}: the mask is empty (no non-zero voxel)", mask.unwrap().display());
+            }
+        }
+        let mut paths = vec![("fixed", fixed.to_path_buf()), ("moving", moving.to_path_buf())];
+        for (role, p) in [("fixed_labels", fixed_labels), ("moving_labels", moving_labels), ("mask", mask)] {
+            if let Some(p) = p {
+                paths.push((role, p.to_path_buf()));
+            }
+        }
+        Ok(Inputs {
+            fixed: fixed_img,
+            moving: moving_img,
+            fixed_labels: fixed_labels_map,
+            moving_labels: moving_labels_map,
+            mask: mask_map,
+            paths,
+        })
+    }
+
+    /// The input paths.
+    pub fn paths(&self) -> Vec<PathBuf> {
+        self.paths.iter().map(|(_, p)| p.clone()).collect()
+    }
+
+    /// Records with checksums, for the report.
+    pub fn records(&self) -> anyhow::Result<Vec<InputRecord>> {
+        self.paths
+            .iter()
+            .map(|(role, p)| Ok(InputRecord { role, path: p.display().to_string(), sha256: sha256_file(p)? }))
+            .collect()
+    }
+}
+
+/// Reads an image and rejects NaN or infinite voxels.
+pub fn read_finite_image(path: &Path) -> anyhow::Result<Image> {
+    let img = sinew_io::read_image(path)?;
+    let bad = img.count_non_finite();
+    if bad > 0 {
+        bail!("{}: {} voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value)", path.display(), bad);
+    }
+    if let Some((lo, hi)) = img.finite_range() {
+        if lo == hi {
+            bail!("{}: the image is constant ({lo}); nothing to register", path.display());
+        }
+    }
+    Ok(img)
+}
+
+/// Reads a label map that must lie on `img`'s grid.
+fn read_labels_on(path: &Path, img: &Image, img_path: &Path) -> anyhow::Result<LabelMap> {
+    let l = sinew_io::read_labels(path)?;
+    if !l.grid.same_as(&img.grid, 1e-3) {
+        bail!(
+            "{}: grid {:?} does not match its scan {} ({:?}); resample it onto the scan's grid first",
+            path.display(),
+            l.grid.shape(),
+            img_path.display(),
+            img.grid.shape()
+        );
+    }
+    Ok(l)
+}
+
+/// SHA-256 of a file, hex.
+pub fn sha256_file(path: &Path) -> anyhow::Result<String> {
+    let mut f = std::fs::File::open(path).with_context(|| format!("{}: cannot open", path.display()))?;
+    let mut h = Sha256::new();
+    let mut buf = vec![0u8; 1 << 16];
+    loop {
+        let n = f.read(&mut buf).with_context(|| format!("{}: cannot read", path.display()))?;
+        if n == 0 {
+            break;
+        }
+        h.update(&buf[..n]);
+    }
+    Ok(h.finalize().iter().map(|b| format!("{b:02x}")).collect())
+}
+
+/// Creates the output folder and refuses outputs that would overwrite an input.
+pub fn prepare_out_dir(dir: &Path, outputs: &[PathBuf], inputs: &[PathBuf]) -> anyhow::Result<()> {
+    std::fs::create_dir_all(dir).with_context(|| format!("{}: cannot create the output folder", dir.display()))?;
+    for o in outputs {
+        sinew_io::atomic::ensure_not_input(o, inputs)?;
+    }
+    Ok(())
+}
+
+/// Writes pretty JSON atomically.
+pub fn write_json<T: Serialize>(path: &Path, value: &T) -> anyhow::Result<()> {
+    let mut bytes = serde_json::to_vec_pretty(value).context("serialising JSON")?;
+    bytes.push(b'\n');
+    sinew_io::atomic::write_bytes_atomic(path, &bytes)?;
+    Ok(())
+}
+
+/// Dice per label before (moving labels on the fixed grid, identity map) and after.
+#[derive(Serialize, Clone)]
+pub struct DiceReport {
+    /// Labels scored: those present in the fixed label map.
+    pub labels: Vec<u16>,
+    /// Dice before registration, by label.
+    pub before: BTreeMap<u16, Option<f64>>,
+    /// Dice after registration, by label.
+    pub after: BTreeMap<u16, Option<f64>>,
+    /// Mean over labels before.
+    pub mean_before: f64,
+    /// Mean over labels after.
+    pub mean_after: f64,
+}
+
+/// Dice of the moving labels before (resampled onto the fixed grid) and after warping.
+pub fn dice_report(fixed: &LabelMap, moving: &LabelMap, warped: &LabelMap) -> anyhow::Result<DiceReport> {
+    let labels = fixed.labels();
+    let before_map = resample::resample_labels(moving, &fixed.grid);
+    let before = sinew_score::dice_per_label(fixed, &before_map, &labels)?;
+    let after = sinew_score::dice_per_label(fixed, warped, &labels)?;
+    Ok(DiceReport {
+        mean_before: sinew_score::mean_dice(&before).unwrap_or(f64::NAN),
+        mean_after: sinew_score::mean_dice(&after).unwrap_or(f64::NAN),
+        before: before.into_iter().collect(),
+        after: after.into_iter().collect(),
+        labels,
+    })
+}
+
+/// Runs `f` on a thread pool of `threads` workers (all cores when `None`).
+pub fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> anyhow::Result<T> + Send) -> anyhow::Result<T> {
+    match threads {
+        None => f(),
+        Some(0) => bail!("--threads must be at least 1"),
+        Some(n) => {
+            let pool = rayon::ThreadPoolBuilder::new().num_threads(n).build().context("starting worker threads")?;
+            pool.install(f)
+        }
+    }
+}
