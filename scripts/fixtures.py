@@ -230,3 +230,46 @@ def make_feat_jacobian(out_dir):
         field = (field * amp).astype(np.float32)
         np.save(os.path.join(out_dir, f"feat_jac_field_{tag}.npy"), field)
         np.save(os.path.join(out_dir, f"feat_jac_det_{tag}.npy"), ref.jacobian_det(field))
+
+
+def make_score_hd95(out_dir):
+    """Surface distances (HD95, HD, ASSD per label) of seeded random smooth label maps with
+    anisotropic spacing, by scipy.ndimage.distance_transform_edt(sampling=spacing) and
+    np.percentile (scripts/ref/score_surface.py). One JSON file, score_hd95.json: per case
+    the shape, spacing, both maps (flat, C order) and the reference values."""
+    import json
+    import os
+
+    import numpy as np
+
+    ref = _ref("score_surface")
+    rng = np.random.default_rng(95)
+    cases = []
+    for shape, spacing, n_labels, sigma in [
+        ((20, 16, 12), (1.0, 1.0, 1.0), 3, 2.0),
+        ((24, 18, 14), (0.8, 1.7, 2.5), 4, 1.5),
+        ((15, 22, 19), (3.0, 0.6, 1.2), 5, 1.0),
+    ]:
+        a = ref.random_labels(rng, shape, n_labels, sigma)
+        # the second map: the first one's noise field perturbed (a different, related segmentation)
+        b = ref.random_labels(rng, shape, n_labels, sigma)
+        b = np.where(rng.random(shape) < 0.7, a, b).astype(np.uint16)
+        b = np.roll(b, (1, -2, 0), axis=(0, 1, 2))  # a shift spreads the distances out
+        b[b == n_labels] = 0  # the last label absent from b: its distances are undefined
+        labels = list(range(1, n_labels + 1))
+        results = {}
+        for label in labels:
+            r = ref.surface_distances(a, b, label, spacing)
+            results[str(label)] = None if r is None else {"hd95": r[0], "hd": r[1], "assd": r[2]}
+        cases.append({
+            "shape": list(shape),
+            "spacing": list(spacing),
+            "a": a.ravel().tolist(),
+            "b": b.ravel().tolist(),
+            "labels": labels,
+            "expected": results,
+        })
+    with open(os.path.join(out_dir, "score_hd95.json"), "w") as f:
+        json.dump({"source": "scipy.ndimage.distance_transform_edt + np.percentile (scripts/ref/score_surface.py)",
+                   "cases": cases}, f, sort_keys=True)
+        f.write("\n")
