@@ -1,0 +1,1 @@
+//! Cohort report (in progress).

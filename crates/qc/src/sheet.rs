@@ -1,0 +1,524 @@
+//! The QC sheet of one registered pair.
+//!
+//! Rows are the axial, coronal and sagittal planes through one voxel; columns are
+//! 1. the fixed scan, 2. the moving scan before registration (on the fixed grid),
+//! 3. the warped moving scan, 4. a colour overlay of fixed (magenta) against warped (green),
+//!    grey where they agree, 5. the deformation grid over the dimmed fixed scan, and
+//! 6. the Jacobian determinant with a colour bar, folds (`det ≤ 0`) in [`FOLD`](crate::colour::FOLD).
+//!
+//! Columns 1–3 carry the outlines of the fixed labels when they are given, so the eye can check
+//! how well the moving anatomy meets them before and after. A title gives the pair and its key
+//! figures (mean Dice before → after, folding share, SDlogJ, determinant range) and the
+//! settings (point, window, pixel size).
+
+use sinew_grid::interp::{nearest, trilinear};
+use sinew_grid::{Border, Field, Image, LabelMap};
+use sinew_transform::{jacobian_stats, JacobianStats};
+
+use crate::canvas::{text_width, Rgb, RgbImage, TextStyle};
+use crate::colour::{self, BACKGROUND, FOLD, GRID_LINE, TEXT, TEXT_DIM};
+use crate::plane::{planes, PlaneGeometry, PlaneKind};
+use crate::QcError;
+
+/// The volumes of one pair, all on the FIXED grid.
+pub struct QcInput<'a> {
+    /// The fixed scan.
+    pub fixed: &'a Image,
+    /// The moving scan on the fixed grid before registration (resampled through world
+    /// coordinates, or the original when it already is on the fixed grid).
+    pub moving_on_fixed: &'a Image,
+    /// The moving scan warped by the field.
+    pub warped: &'a Image,
+    /// The displacement field (voxels, pull convention).
+    pub field: &'a Field,
+    /// Its Jacobian determinant (from `sinew_transform::jacobian_determinant`).
+    pub jacdet: &'a Image,
+    /// Fixed labels: outlines in columns 1–3, default point, Dice.
+    pub fixed_labels: Option<&'a LabelMap>,
+    /// Moving labels on the fixed grid before registration: Dice before.
+    pub moving_labels_on_fixed: Option<&'a LabelMap>,
+    /// Warped moving labels: Dice after.
+    pub warped_labels: Option<&'a LabelMap>,
+    /// The first title line, e.g. `"fixed subject_00 ← moving subject_01"`.
+    pub title: String,
+}
+
+/// Intensity window of the grey panels.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Window {
+    /// Values `lo..hi` map to black..white (e.g. Hounsfield units for CT).
+    Range {
+        /// Value shown black.
+        lo: f32,
+        /// Value shown white.
+        hi: f32,
+    },
+    /// The 1st to 99th percentile of the fixed scan's values.
+    Percentiles,
+}
+
+impl Window {
+    /// The soft-tissue CT window used by default: −200 to 300 HU (common practice for
+    /// abdominal CT).
+    pub const CT_SOFT: Window = Window::Range { lo: -200.0, hi: 300.0 };
+}
+
+/// How a sheet is drawn.
+#[derive(Clone, Debug, PartialEq)]
+pub struct QcOptions {
+    /// Voxel `(i, j, k)` the three planes pass through; default: the centre (rounded mean
+    /// voxel position) of the fixed labels' non-zero voxels, else the grid centre.
+    pub point: Option<[usize; 3]>,
+    /// Grey window for columns 1–5.
+    pub window: Window,
+    /// Pixels along the longest physical extent of the fixed grid (sets the common pixel
+    /// size in mm).
+    pub panel_px: u32,
+    /// Voxels between deformation grid lines.
+    pub grid_every: usize,
+    /// Jacobian colour scale: `log₂ det` from `−range` (full blue) to `+range` (full red).
+    pub jacobian_log2_range: f32,
+}
+
+impl Default for QcOptions {
+    fn default() -> Self {
+        QcOptions { point: None, window: Window::CT_SOFT, panel_px: 220, grid_every: 6, jacobian_log2_range: 1.0 }
+    }
+}
+
+/// Sheet columns, left to right.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Column {
+    /// The fixed scan.
+    Fixed,
+    /// The moving scan before registration.
+    Moving,
+    /// The warped moving scan.
+    Warped,
+    /// Colour overlay fixed (magenta) vs warped (green).
+    Overlay,
+    /// Deformation grid over the fixed scan.
+    Grid,
+    /// Jacobian determinant.
+    Jacobian,
+}
+
+impl Column {
+    /// All columns in order.
+    pub const ALL: [Column; 6] =
+        [Column::Fixed, Column::Moving, Column::Warped, Column::Overlay, Column::Grid, Column::Jacobian];
+
+    /// The column header as coloured pieces.
+    fn header(self) -> Vec<(&'static str, Rgb)> {
+        match self {
+            Column::Fixed => vec![("fixed", TEXT)],
+            Column::Moving => vec![("moving (before)", TEXT)],
+            Column::Warped => vec![("warped (after)", TEXT)],
+            Column::Overlay => vec![("fixed", [255, 90, 255]), (" vs ", TEXT), ("warped", [90, 255, 90])],
+            Column::Grid => vec![("deformation grid", TEXT)],
+            Column::Jacobian => vec![("Jacobian determinant", TEXT)],
+        }
+    }
+}
+
+/// One panel of a sheet.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Panel {
+    /// Its column.
+    pub column: Column,
+    /// Its plane and pixel ↔ voxel map.
+    pub plane: PlaneGeometry,
+    /// Left edge in sheet pixels.
+    pub x: u32,
+    /// Top edge in sheet pixels.
+    pub y: u32,
+}
+
+/// The figures in a sheet's title.
+#[derive(Clone, Debug, PartialEq)]
+pub struct KeyFigures {
+    /// Mean Dice over the fixed labels before registration.
+    pub dice_before: Option<f64>,
+    /// Mean Dice after registration.
+    pub dice_after: Option<f64>,
+    /// Number of labels scored.
+    pub labels: usize,
+    /// Jacobian statistics over the whole fixed grid.
+    pub jacobian: JacobianStats,
+}
+
+/// A rendered sheet with its layout.
+#[derive(Clone, Debug)]
+pub struct QcSheet {
+    /// The picture.
+    pub image: RgbImage,
+    /// Every panel (3 planes × 6 columns), row by row.
+    pub panels: Vec<Panel>,
+    /// The voxel the planes pass through.
+    pub point: [usize; 3],
+    /// The (lo, hi) grey window applied.
+    pub window: (f32, f32),
+    /// Pixel size in mm.
+    pub mm_per_px: f64,
+    /// The figures in the title.
+    pub figures: KeyFigures,
+}
+
+impl QcSheet {
+    /// The panel of `column` in the row of plane `kind`.
+    pub fn panel(&self, kind: PlaneKind, column: Column) -> &Panel {
+        self.panels.iter().find(|p| p.plane.kind == kind && p.column == column).expect("every panel is laid out")
+    }
+}
+
+const MARGIN: u32 = 14;
+const ROW_LABEL_W: u32 = 78;
+const GAP: u32 = 8;
+const TITLE_H: u32 = 58;
+const HEADER_H: u32 = 22;
+const BAR_W: u32 = 96;
+
+fn style(px: f32, colour: Rgb, bold: bool) -> TextStyle {
+    TextStyle { bold, px, colour }
+}
+
+fn check_grid(what: &'static str, fixed: &Image, g: &sinew_grid::Grid) -> Result<(), QcError> {
+    if fixed.grid.same_as(g, 1e-3) {
+        Ok(())
+    } else {
+        Err(QcError::GridMismatch { what, expected: fixed.grid.shape(), found: g.shape() })
+    }
+}
+
+/// The default point: the rounded mean voxel position of the non-zero labels, else the
+/// grid centre `n/2` along each axis.
+pub fn default_point(grid: &sinew_grid::Grid, labels: Option<&LabelMap>) -> [usize; 3] {
+    let s = grid.shape();
+    if let Some(l) = labels {
+        let mut sum = [0f64; 3];
+        let mut count = 0usize;
+        for ((i, j, k), &v) in l.data.indexed_iter() {
+            if v != 0 {
+                sum[0] += i as f64;
+                sum[1] += j as f64;
+                sum[2] += k as f64;
+                count += 1;
+            }
+        }
+        if count > 0 {
+            return [0, 1, 2].map(|d| ((sum[d] / count as f64).round() as usize).min(s[d] - 1));
+        }
+    }
+    [s[0] / 2, s[1] / 2, s[2] / 2]
+}
+
+fn resolve_window(w: Window, fixed: &Image) -> Result<(f32, f32), QcError> {
+    match w {
+        Window::Range { lo, hi } => {
+            if !(lo.is_finite() && hi.is_finite() && lo < hi) {
+                return Err(QcError::BadOption(format!("window {lo}..{hi}: need finite lo < hi")));
+            }
+            Ok((lo, hi))
+        }
+        Window::Percentiles => {
+            let mut v: Vec<f32> = fixed.as_slice().iter().copied().filter(|x| x.is_finite()).collect();
+            if v.is_empty() {
+                return Err(QcError::BadOption("percentile window of an image with no finite voxel".into()));
+            }
+            v.sort_by(f32::total_cmp);
+            let at = |q: f64| v[((v.len() - 1) as f64 * q).round() as usize];
+            let (lo, hi) = (at(0.01), at(0.99));
+            Ok(if lo < hi { (lo, hi) } else { (lo, lo + 1.0) })
+        }
+    }
+}
+
+/// Renders the QC sheet of one pair (see the [module documentation](self)).
+///
+/// Errors when an input is not on the fixed grid, the point lies outside it, or an option is
+/// out of range.
+pub fn render_qc_sheet(input: &QcInput, opts: &QcOptions) -> Result<QcSheet, QcError> {
+    let fixed = input.fixed;
+    let grid = &fixed.grid;
+    check_grid("moving scan (on the fixed grid)", fixed, &input.moving_on_fixed.grid)?;
+    check_grid("warped scan", fixed, &input.warped.grid)?;
+    check_grid("field", fixed, &input.field.grid)?;
+    check_grid("Jacobian determinant", fixed, &input.jacdet.grid)?;
+    for (what, l) in [
+        ("fixed labels", input.fixed_labels),
+        ("moving labels (on the fixed grid)", input.moving_labels_on_fixed),
+        ("warped labels", input.warped_labels),
+    ] {
+        if let Some(l) = l {
+            check_grid(what, fixed, &l.grid)?;
+        }
+    }
+    if opts.panel_px < 16 || opts.panel_px > 4096 {
+        return Err(QcError::BadOption(format!("panel size {} px: use 16 to 4096", opts.panel_px)));
+    }
+    if opts.grid_every == 0 {
+        return Err(QcError::BadOption("grid line spacing must be at least one voxel".into()));
+    }
+    if !(opts.jacobian_log2_range.is_finite() && opts.jacobian_log2_range > 0.0) {
+        return Err(QcError::BadOption(format!("Jacobian range {}: must be positive", opts.jacobian_log2_range)));
+    }
+    let shape = grid.shape();
+    let point = opts.point.unwrap_or_else(|| default_point(grid, input.fixed_labels));
+    if (0..3).any(|d| point[d] >= shape[d]) {
+        return Err(QcError::PointOutside { point, shape });
+    }
+    let (lo, hi) = resolve_window(opts.window, fixed)?;
+    let figures = key_figures(input)?;
+
+    let spacing = grid.spacing();
+    let longest = (0..3).map(|d| shape[d] as f64 * spacing[d]).fold(0.0, f64::max);
+    let mm_per_px = longest / opts.panel_px as f64;
+    let rows = planes(grid, point, mm_per_px);
+
+    // Layout: column widths are the widest panel of the column; row heights the tallest.
+    let col_w = rows.iter().map(|p| p.width).max().expect("three rows").max(120);
+    let row_h: Vec<u32> = rows.iter().map(|p| p.height).collect();
+    let panels_w = Column::ALL.len() as u32 * col_w + (Column::ALL.len() as u32 - 1) * GAP;
+    let width = MARGIN + ROW_LABEL_W + panels_w + BAR_W + MARGIN;
+    let top = MARGIN + TITLE_H + HEADER_H;
+    let height = top + row_h.iter().sum::<u32>() + 2 * GAP + MARGIN + 18;
+    let mut img = RgbImage::new(width, height, BACKGROUND);
+
+    draw_title(&mut img, input, &figures, point, (lo, hi), mm_per_px, opts);
+    let x0 = MARGIN + ROW_LABEL_W;
+    for (c, col) in Column::ALL.iter().enumerate() {
+        let pieces = col.header();
+        let cx = x0 + c as u32 * (col_w + GAP);
+        let tw: f32 = pieces.iter().map(|&(t, c)| text_width(t, style(13.0, c, false))).sum();
+        let mut tx = cx as f32 + ((col_w as f32 - tw) / 2.0).max(0.0);
+        for (t, c) in pieces {
+            tx += img.text(tx, (MARGIN + TITLE_H) as f32, t, style(13.0, c, false));
+        }
+    }
+
+    let mut panels = Vec::with_capacity(18);
+    let mut y = top;
+    for (r, plane) in rows.iter().enumerate() {
+        let axis = ["i", "j", "k"][plane.normal_axis];
+        img.text(MARGIN as f32, y as f32 + 4.0, plane.kind.name(), style(14.0, TEXT, true));
+        img.text(MARGIN as f32, y as f32 + 22.0, &format!("{axis} = {}", plane.index), style(12.0, TEXT_DIM, false));
+        let py = y + (row_h[r] - plane.height) / 2;
+        for (c, &column) in Column::ALL.iter().enumerate() {
+            let px = x0 + c as u32 * (col_w + GAP) + (col_w - plane.width) / 2;
+            let tile = render_panel(input, plane, column, (lo, hi), opts);
+            img.blit(&tile, px as i64, py as i64);
+            panels.push(Panel { column, plane: *plane, x: px, y: py });
+        }
+        y += row_h[r] + GAP;
+    }
+    let bar_x = x0 + panels_w + 14;
+    draw_colour_bar(&mut img, bar_x, top, top + row_h.iter().sum::<u32>() + 2 * GAP, opts.jacobian_log2_range);
+    let foot = "orientation: patient's right on the left, anterior/superior up (radiological)";
+    img.text(x0 as f32, (height - MARGIN - 14) as f32, foot, style(11.0, TEXT_DIM, false));
+
+    Ok(QcSheet { image: img, panels, point, window: (lo, hi), mm_per_px, figures })
+}
+
+fn key_figures(input: &QcInput) -> Result<KeyFigures, QcError> {
+    let jacobian = jacobian_stats(input.jacdet, None);
+    let (mut before, mut after, mut labels) = (None, None, 0);
+    if let Some(f) = input.fixed_labels {
+        let ls = f.labels();
+        labels = ls.len();
+        let mean = |other: Option<&LabelMap>| -> Result<Option<f64>, QcError> {
+            match other {
+                Some(o) => {
+                    let d = sinew_score::dice_per_label(f, o, &ls).map_err(|e| QcError::BadOption(e.to_string()))?;
+                    Ok(sinew_score::mean_dice(&d))
+                }
+                None => Ok(None),
+            }
+        };
+        before = mean(input.moving_labels_on_fixed)?;
+        after = mean(input.warped_labels)?;
+    }
+    Ok(KeyFigures { dice_before: before, dice_after: after, labels, jacobian })
+}
+
+fn draw_title(
+    img: &mut RgbImage,
+    input: &QcInput,
+    f: &KeyFigures,
+    point: [usize; 3],
+    window: (f32, f32),
+    mm_per_px: f64,
+    opts: &QcOptions,
+) {
+    let x = MARGIN as f32;
+    img.text(x, MARGIN as f32 - 2.0, &input.title, style(17.0, TEXT, true));
+    let fmt = |d: Option<f64>| d.map_or("–".to_string(), |v| format!("{v:.3}"));
+    let j = &f.jacobian;
+    let mut line = String::new();
+    if f.labels > 0 {
+        line += &format!("mean Dice {} → {} ({} labels)   ·   ", fmt(f.dice_before), fmt(f.dice_after), f.labels);
+    }
+    line += &format!(
+        "folding {:.3} % ({} voxels)   ·   SDlogJ {:.3}   ·   det {:.2} … {:.2}",
+        100.0 * j.folding_fraction,
+        j.folded_voxels,
+        j.sd_log_j,
+        j.min,
+        j.max
+    );
+    img.text(x, MARGIN as f32 + 20.0, &line, style(14.0, TEXT, false));
+    let settings = format!(
+        "planes through voxel ({}, {}, {})   ·   window {} … {}   ·   {:.2} mm per pixel   ·   grid every {} voxels",
+        point[0], point[1], point[2], window.0, window.1, mm_per_px, opts.grid_every
+    );
+    img.text(x, MARGIN as f32 + 38.0, &settings, style(12.0, TEXT_DIM, false));
+}
+
+/// Trilinear sample of an image at a continuous voxel position (edge values repeated).
+#[inline]
+fn at(img: &Image, p: [f64; 3]) -> f32 {
+    trilinear(img.as_slice(), img.grid.shape(), [p[0] as f32, p[1] as f32, p[2] as f32], Border::Nearest)
+}
+
+/// Nearest-neighbour sample (half away from zero), `outside` beyond the grid.
+#[inline]
+fn at_nearest<T: Copy>(data: &[T], shape: [usize; 3], p: [f64; 3], outside: T) -> T {
+    nearest(data, shape, [p[0] as f32, p[1] as f32, p[2] as f32], outside)
+}
+
+fn render_panel(input: &QcInput, plane: &PlaneGeometry, column: Column, win: (f32, f32), opts: &QcOptions) -> RgbImage {
+    let (w, h) = (plane.width, plane.height);
+    let mut tile = RgbImage::new(w, h, [0, 0, 0]);
+    let grey_of = |img: &Image| plane.sample(|p| colour::window(at(img, p), win.0, win.1));
+    let paint = |tile: &mut RgbImage, colours: Vec<Rgb>| {
+        for (n, c) in colours.into_iter().enumerate() {
+            tile.put((n as u32 % w) as i64, (n as u32 / w) as i64, c);
+        }
+    };
+    match column {
+        Column::Fixed | Column::Moving | Column::Warped => {
+            let img = match column {
+                Column::Fixed => input.fixed,
+                Column::Moving => input.moving_on_fixed,
+                _ => input.warped,
+            };
+            paint(&mut tile, grey_of(img).into_iter().map(colour::grey).collect());
+            if let Some(l) = input.fixed_labels {
+                draw_contours(&mut tile, plane, l);
+            }
+        }
+        Column::Overlay => {
+            let f = grey_of(input.fixed);
+            let m = grey_of(input.warped);
+            let cols = f.iter().zip(&m).map(|(&a, &b)| {
+                let (a, b) = ((a * 255.0).round() as u8, (b * 255.0).round() as u8);
+                [a, b, a]
+            });
+            paint(&mut tile, cols.collect());
+        }
+        Column::Grid => {
+            paint(&mut tile, grey_of(input.fixed).into_iter().map(|g| colour::grey(0.15 + 0.55 * g)).collect());
+            draw_grid(&mut tile, plane, input.field, opts.grid_every);
+        }
+        Column::Jacobian => {
+            let det = input.jacdet;
+            let s = det.grid.shape();
+            let vals = plane.sample(|p| at_nearest(det.as_slice(), s, p, f32::NAN));
+            paint(&mut tile, vals.into_iter().map(|d| colour::jacobian_colour(d, opts.jacobian_log2_range)).collect());
+        }
+    }
+    tile
+}
+
+/// One-pixel outlines of the labels: a pixel whose (nearest) label is non-zero and differs
+/// from one of its four neighbours (or lies on the panel edge) takes the label's colour.
+fn draw_contours(tile: &mut RgbImage, plane: &PlaneGeometry, labels: &LabelMap) {
+    let s = labels.grid.shape();
+    let lab = plane.sample(|p| at_nearest(labels.as_slice(), s, p, 0u16));
+    let (w, h) = (plane.width as usize, plane.height as usize);
+    for v in 0..h {
+        for u in 0..w {
+            let l = lab[v * w + u];
+            if l == 0 {
+                continue;
+            }
+            let edge = u == 0
+                || v == 0
+                || u + 1 == w
+                || v + 1 == h
+                || lab[v * w + u - 1] != l
+                || lab[v * w + u + 1] != l
+                || lab[(v - 1) * w + u] != l
+                || lab[(v + 1) * w + u] != l;
+            if edge {
+                tile.put(u as i64, v as i64, colour::label_colour(l));
+            }
+        }
+    }
+}
+
+/// The deformed grid: the lines `t_v = const` and `t_h = const` every `every` voxels, each
+/// point `x` moved to `x + u(x)` with the in-plane components of the field (sampled
+/// trilinearly, half-voxel steps), so the picture shows where each fixed grid point samples
+/// the moving scan.
+fn draw_grid(tile: &mut RgbImage, plane: &PlaneGeometry, field: &Field, every: usize) {
+    let s = field.grid.shape();
+    let comp = |d: usize, p: [f64; 3]| {
+        trilinear(field.component(d), s, [p[0] as f32, p[1] as f32, p[2] as f32], Border::Nearest) as f64
+    };
+    let point = |t_h: f64, t_v: f64| {
+        let mut p = [0.0; 3];
+        p[plane.normal_axis] = plane.index as f64;
+        p[plane.h_axis] = t_h;
+        p[plane.v_axis] = t_v;
+        plane.pixel_of(t_h + comp(plane.h_axis, p), t_v + comp(plane.v_axis, p))
+    };
+    let offset_h = (plane.n_h - 1) % every / 2;
+    let offset_v = (plane.n_v - 1) % every / 2;
+    for (fixed_n, along_n, offset, horizontal) in
+        [(plane.n_v, plane.n_h, offset_v, true), (plane.n_h, plane.n_v, offset_h, false)]
+    {
+        for line in (offset..fixed_n).step_by(every) {
+            let steps = 2 * (along_n - 1);
+            let mut prev: Option<[f32; 2]> = None;
+            for s in 0..=steps {
+                let t = s as f64 * 0.5;
+                let q = if horizontal { point(t, line as f64) } else { point(line as f64, t) };
+                if let Some(p) = prev {
+                    tile.line(p, q, GRID_LINE, 0.9);
+                }
+                prev = Some(q);
+            }
+        }
+    }
+}
+
+fn draw_colour_bar(img: &mut RgbImage, x: u32, y0: u32, y1: u32, range: f32) {
+    let st = style(12.0, TEXT, false);
+    img.text(x as f32 - 4.0, y0 as f32 - 18.0, "det", st);
+    let fold_h = 18;
+    let bar_top = y0 + 4;
+    let bar_bottom = y1.saturating_sub(fold_h + 30).max(bar_top + 20);
+    let bar_w = 16;
+    let n = bar_bottom - bar_top;
+    for r in 0..n {
+        // Top = +range (expansion), bottom = −range (compression).
+        let t = range * (1.0 - 2.0 * (r as f32 + 0.5) / n as f32);
+        let c = colour::jacobian_colour(t.exp2(), range);
+        img.fill_rect(x as i64, (bar_top + r) as i64, bar_w, 1, c);
+    }
+    img.stroke_rect(x as i64 - 1, bar_top as i64 - 1, bar_w + 2, n + 2, TEXT_DIM);
+    let ticks = [-range, -range / 2.0, 0.0, range / 2.0, range];
+    for t in ticks {
+        let r = ((range - t) / (2.0 * range) * n as f32).round() as i64;
+        let yy = bar_top as i64 + r.min(n as i64 - 1);
+        img.fill_rect(x as i64 + bar_w as i64, yy, 5, 1, TEXT);
+        let v = t.exp2();
+        let label = if (v - v.round()).abs() < 1e-3 { format!("{:.0}", v) } else { format!("{v:.2}") };
+        img.text((x + bar_w + 8) as f32, yy as f32 - 7.0, &label, st);
+    }
+    let fy = bar_bottom + 14;
+    img.fill_rect(x as i64, fy as i64, bar_w, fold_h, FOLD);
+    img.stroke_rect(x as i64 - 1, fy as i64 - 1, bar_w + 2, fold_h + 2, TEXT_DIM);
+    img.text((x + bar_w + 6) as f32, fy as f32 + 1.0, "≤ 0", st);
+    img.text(x as f32 - 4.0, (fy + fold_h + 4) as f32, "(fold)", style(11.0, TEXT_DIM, false));
+}

@@ -1,0 +1,193 @@
+//! QC sheet checks: size and proportions, every panel drawn, folds marked exactly.
+
+use sinew_grid::{Border, Field, Grid, Image, LabelMap};
+use sinew_qc::colour::FOLD;
+use sinew_qc::{render_qc_sheet, Column, PlaneKind, QcInput, QcOptions, QcSheet};
+
+const SHAPE: [usize; 3] = [40, 32, 48];
+const SPACING: [f64; 3] = [2.0, 2.5, 3.0];
+// The fold box: i0 < i < i1, j in J, k in K.
+const I0: usize = 14;
+const I1: usize = 19;
+const J: std::ops::Range<usize> = 10..20;
+const K: std::ops::Range<usize> = 20..30;
+
+fn grid() -> Grid {
+    Grid::axis_aligned(SHAPE, SPACING, [0.0; 3])
+}
+
+/// A CT-like ellipsoid (100 HU inside, −900 outside) with a denser core (300 HU), centred at `c`.
+fn phantom(c: [f64; 3]) -> Image {
+    let mut img = Image::filled(grid(), -900.0);
+    for ((i, j, k), v) in img.data.indexed_iter_mut() {
+        let r = [(i as f64 - c[0]) / 14.0, (j as f64 - c[1]) / 11.0, (k as f64 - c[2]) / 17.0];
+        let q = r.iter().map(|x| x * x).sum::<f64>();
+        if q < 1.0 {
+            *v = if q < 0.2 { 300.0 } else { 100.0 };
+        }
+    }
+    img
+}
+
+fn labels_of(img: &Image) -> LabelMap {
+    let mut l = LabelMap::filled(img.grid.clone(), 0);
+    for (o, &v) in l.as_slice_mut().iter_mut().zip(img.as_slice()) {
+        *o = if v > 200.0 {
+            2
+        } else if v > 0.0 {
+            1
+        } else {
+            0
+        };
+    }
+    l
+}
+
+/// u = (s(i)·m(j, k), 0, 0) with s(i) = −1.5·(clamp(i, I0, I1) − I0) and m the indicator of
+/// J × K. Only ∂u_i/∂i enters det(I + ∇u) (the other rows of ∇u are zero), so with the
+/// central difference of a piecewise-linear s (exact fact):
+/// det = 1 − 1.5 = −0.5 for I0 < i < I1 inside J × K, det = 1 − 0.75 = 0.25 at i = I0 and
+/// i = I1 there, det = 1 elsewhere. So the folded voxels are exactly (I0, I1) × J × K.
+fn folding_field() -> Field {
+    let mut f = Field::zeros(grid());
+    let [_, ny, nz] = SHAPE;
+    let ui = &mut f.components_mut()[0];
+    for (n, v) in ui.iter_mut().enumerate() {
+        let (i, j, k) = (n / (ny * nz), (n / nz) % ny, n % nz);
+        if J.contains(&j) && K.contains(&k) {
+            *v = (-1.5 * (i.clamp(I0, I1) - I0) as f64) as f32;
+        }
+    }
+    f
+}
+
+fn folded(i: usize, j: usize, k: usize) -> bool {
+    i > I0 && i < I1 && J.contains(&j) && K.contains(&k)
+}
+
+fn render(point: Option<[usize; 3]>) -> QcSheet {
+    let fixed = phantom([20.0, 16.0, 24.0]);
+    let moving = phantom([22.0, 15.0, 26.0]);
+    let field = folding_field();
+    let warped = sinew_transform::warp_image(&moving, &field, Border::Constant(-900.0)).unwrap();
+    let jacdet = sinew_transform::jacobian_determinant(&field);
+    let (fl, ml) = (labels_of(&fixed), labels_of(&moving));
+    let wl = sinew_transform::warp_labels(&ml, &field).unwrap();
+    let input = QcInput {
+        fixed: &fixed,
+        moving_on_fixed: &moving,
+        warped: &warped,
+        field: &field,
+        jacdet: &jacdet,
+        fixed_labels: Some(&fl),
+        moving_labels_on_fixed: Some(&ml),
+        warped_labels: Some(&wl),
+        title: "fixed a ← moving b".into(),
+    };
+    render_qc_sheet(&input, &QcOptions { point, ..QcOptions::default() }).unwrap()
+}
+
+#[test]
+fn folded_voxels_are_exactly_the_constructed_box() {
+    // The library's determinant agrees with the closed form above at every voxel.
+    let det = sinew_transform::jacobian_determinant(&folding_field());
+    for ((i, j, k), &d) in det.data.indexed_iter() {
+        assert_eq!(d <= 0.0, folded(i, j, k), "voxel ({i}, {j}, {k}) det {d}");
+    }
+}
+
+#[test]
+fn sheet_has_the_expected_size_proportions_and_non_empty_panels() {
+    // Through the fold box, so the Jacobian panels are not uniform either.
+    let sheet = render(Some([I0 + 2, 15, 25]));
+    let img = &sheet.image;
+    assert_eq!(sheet.panels.len(), 18);
+    // Common pixel size: the longest extent (48 · 3 mm = 144 mm) over 220 px.
+    assert!((sheet.mm_per_px - 144.0 / 220.0).abs() < 1e-12);
+    for p in &sheet.panels {
+        let g = &p.plane;
+        // Spacing respected: each side is n·spacing/pixel size, rounded.
+        let want_w = (g.n_h as f64 * SPACING[g.h_axis] / sheet.mm_per_px).round() as u32;
+        let want_h = (g.n_v as f64 * SPACING[g.v_axis] / sheet.mm_per_px).round() as u32;
+        assert_eq!((g.width, g.height), (want_w, want_h), "{:?} {:?}", g.kind, p.column);
+        assert!(p.x + g.width <= img.width() && p.y + g.height <= img.height());
+        // Non-empty: the panel is not one flat colour.
+        let first = img.pixel(p.x, p.y);
+        let distinct = (0..g.height)
+            .flat_map(|v| (0..g.width).map(move |u| (u, v)))
+            .filter(|&(u, v)| img.pixel(p.x + u, p.y + v) != first)
+            .count();
+        assert!(
+            distinct > (g.width * g.height / 100) as usize,
+            "{:?} {:?}: {distinct} pixels differ",
+            g.kind,
+            p.column
+        );
+    }
+    // The rows are the three planes; axial is the i–j plane for this axis-aligned grid.
+    let ax = sheet.panel(PlaneKind::Axial, Column::Fixed).plane;
+    assert_eq!((ax.normal_axis, ax.h_axis, ax.v_axis), (2, 0, 1));
+    // Width: margins, row labels, six columns of the widest panel and the colour bar.
+    let col_w = sheet.panels.iter().map(|p| p.plane.width).max().unwrap().max(120);
+    assert_eq!(img.width(), 14 + 78 + 6 * col_w + 5 * 8 + 96 + 14);
+    // Key figures: a 2-voxel shift lowers the overlap, the fold box is counted.
+    let f = &sheet.figures;
+    assert_eq!(f.labels, 2);
+    assert_eq!(f.jacobian.folded_voxels, (I1 - I0 - 1) * J.len() * K.len());
+}
+
+#[test]
+fn default_point_is_the_centre_of_the_labelled_region() {
+    // The fixed ellipsoid is symmetric about (20, 16, 24), so its labelled voxels average there.
+    assert_eq!(render(None).point, [20, 16, 24]);
+}
+
+#[test]
+fn jacobian_panel_marks_exactly_the_folded_voxels() {
+    let point = [I0 + 2, 15, 25];
+    let sheet = render(Some(point));
+    for kind in [PlaneKind::Axial, PlaneKind::Coronal, PlaneKind::Sagittal] {
+        let p = sheet.panel(kind, Column::Jacobian);
+        let g = &p.plane;
+        // RAS grid (positive diagonal affine): every displayed axis is reversed (radiological
+        // display, superior/anterior up); see sinew_qc::plane.
+        assert!(g.h_flip && g.v_flip);
+        let (mut marked, mut mismatches) = (0, 0);
+        for v in 0..g.height {
+            for u in 0..g.width {
+                // The voxel under the pixel centre, by the documented map:
+                // t = (u + 0.5)·n/w − 0.5, reversed t → n − 1 − t, nearest = round.
+                let coord = |u: u32, n: usize, w: u32| n as f64 - 1.0 - ((u as f64 + 0.5) * n as f64 / w as f64 - 0.5);
+                let mut vox = [0usize; 3];
+                vox[g.normal_axis] = g.index;
+                vox[g.h_axis] = coord(u, g.n_h, g.width).round() as usize;
+                vox[g.v_axis] = coord(v, g.n_v, g.height).round() as usize;
+                let is_fold = sheet.image.pixel(p.x + u, p.y + v) == FOLD;
+                marked += is_fold as usize;
+                mismatches += (is_fold != folded(vox[0], vox[1], vox[2])) as usize;
+            }
+        }
+        assert_eq!(mismatches, 0, "{kind:?}: {mismatches} pixels disagree with the folded voxels");
+        assert!(marked > 0, "{kind:?}: the plane cuts the fold box, so some pixels must be marked");
+    }
+}
+
+#[test]
+fn sheet_png_is_written_atomically_and_decodes() {
+    let sheet = render(None);
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("qc.png");
+    sinew_qc::write_png(&path, &sheet.image).unwrap();
+    // Reference decoder: the `png` crate reads back the same pixels.
+    let dec = png::Decoder::new(std::io::BufReader::new(std::fs::File::open(&path).unwrap()));
+    let mut r = dec.read_info().unwrap();
+    let mut buf = vec![0; r.output_buffer_size().unwrap()];
+    let info = r.next_frame(&mut buf).unwrap();
+    assert_eq!((info.width, info.height), (sheet.image.width(), sheet.image.height()));
+    assert_eq!(&buf[..info.buffer_size()], sheet.image.as_raw());
+    let names: Vec<_> = std::fs::read_dir(dir.path()).unwrap().map(|e| e.unwrap().file_name()).collect();
+    assert_eq!(names.len(), 1, "no temporary file left: {names:?}");
+    if let Ok(dir) = std::env::var("SINEW_QC_KEEP") {
+        sinew_qc::write_png(&std::path::Path::new(&dir).join("test_sheet.png"), &sheet.image).unwrap();
+    }
+}
