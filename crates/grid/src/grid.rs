@@ -133,6 +133,21 @@ impl Grid {
         Grid::new(shape, self.affine.compose(&coarse_to_fine)).expect("halving keeps a valid grid")
     }
 
+    /// The lattice of every `s`-th voxel: point `c` sits on voxel `s·c`, so the shape is
+    /// `(n − 1)/s + 1` per axis (the last point stays inside) and the spacing is `s` times
+    /// larger. `s = 1` gives the grid itself.
+    ///
+    /// # Panics
+    /// When `s` is zero.
+    #[track_caller]
+    pub fn strided(&self, s: usize) -> Grid {
+        assert!(s >= 1, "stride must be at least 1");
+        let shape = self.shape.map(|n| (n - 1) / s + 1);
+        let f = s as f64;
+        let scale = Affine::from_parts([[f, 0.0, 0.0], [0.0, f, 0.0], [0.0, 0.0, f]], [0.0; 3]);
+        Grid::new(shape, self.affine.compose(&scale)).expect("a strided grid stays valid")
+    }
+
     /// A grid with the same field of view as `self`, but `shape` voxels: voxel corners
     /// (not centres) of the first and last voxels coincide, as in image resizing.
     pub fn with_shape(&self, shape: [usize; 3]) -> Result<Grid, GridError> {
@@ -179,6 +194,14 @@ mod tests {
         // coarse voxel 0 sits halfway between fine voxels 0 and 1
         let w = h.voxel_to_world([0.0, 0.0, 0.0]);
         assert_eq!(w, [-5.0 + 1.0, 3.0 + 0.5, 7.0]);
+    }
+
+    #[test]
+    fn strided_lattice_points_sit_on_voxels() {
+        let g = Grid::axis_aligned([9, 8, 1], [2.0, 1.0, 3.0], [1.0, 2.0, 3.0]);
+        let s = g.strided(2);
+        assert_eq!(s.shape(), [5, 4, 1]);
+        assert_eq!(s.voxel_to_world([4.0, 3.0, 0.0]), g.voxel_to_world([8.0, 6.0, 0.0]));
     }
 
     #[test]

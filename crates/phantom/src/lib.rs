@@ -145,7 +145,11 @@ pub fn generate(seed: u64, subject_index: usize, params: &PhantomParams) -> Subj
     assert!(params.noise_hu.is_finite() && params.noise_hu >= 0.0, "noise_hu {} must be ≥ 0", params.noise_hu);
     let grid = params.grid();
     let d = draws(seed, subject_index);
-    let (image, labels) = render::render(&d.anatomy, &d.fields, &grid, params.noise_hu, d.noise_seed);
+    let (mut image, labels) = render::render(&d.anatomy, &d.fields, &grid, params.noise_hu, d.noise_seed);
+    let texture = render::fine_texture(&grid, d.noise_seed ^ 0x7e47_u64.rotate_left(40), TEXTURE_SIGMA_MM);
+    for ((v, &l), &t) in image.iter_mut().zip(&labels).zip(&texture) {
+        *v += texture_amplitude(l) * t;
+    }
     let s = grid.shape();
     let image = Array3::from_shape_vec((s[0], s[1], s[2]), image).expect("buffer matches the grid");
     let labels = Array3::from_shape_vec((s[0], s[1], s[2]), labels).expect("buffer matches the grid");
@@ -153,6 +157,21 @@ pub fn generate(seed: u64, subject_index: usize, params: &PhantomParams) -> Subj
         id: format!("subject_{subject_index:02}"),
         image: Volume::new(grid.clone(), image).expect("shape matches the grid"),
         labels: Volume::new(grid, labels).expect("shape matches the grid"),
+    }
+}
+
+/// Correlation scale (σ, mm) of the fine tissue texture.
+pub const TEXTURE_SIGMA_MM: f64 = 2.0;
+
+/// Amplitude (HU, one standard deviation) of the fine tissue texture by label: strongest in
+/// the fat and muscle of the body wall and in bone, weaker in organ parenchyma, none in air.
+pub fn texture_amplitude(label: u16) -> f32 {
+    match label {
+        0 => 0.0,
+        8 => 40.0,
+        10 => 25.0,
+        6 | 7 => 5.0,
+        _ => 12.0,
     }
 }
 

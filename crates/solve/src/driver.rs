@@ -8,6 +8,7 @@ use sinew_grid::{pyramid, resample, Field, Grid, Image, LabelMap};
 use sinew_transform::{jacobian_determinant, jacobian_stats, JacobianStats};
 
 use crate::kernel::{Energy, Problem};
+use crate::param::{GaussianDense, Parametrisation};
 use crate::{adam::Adam, lbfgs, svf, Optimiser, RegParams, Similarity, SolveError};
 
 /// A stage of the registration, reported to the observer.
@@ -43,10 +44,12 @@ pub struct Progress {
 pub struct LevelReport {
     /// Pyramid level (0 = input grid).
     pub level: usize,
-    /// Shape of the level grid.
+    /// Shape of the field's lattice at this level.
     pub shape: [usize; 3],
-    /// Spacing of the level grid in mm.
+    /// Spacing of the field's lattice in mm.
     pub spacing_mm: [f64; 3],
+    /// Lattice stride over the level's descriptors (1 = one field vector per voxel).
+    pub stride: usize,
     /// Iterations run (fewer than planned when the tolerance stopped the level).
     pub iterations: usize,
     /// Objective evaluations (fused kernel passes).
@@ -121,6 +124,7 @@ pub fn register(
     let (fixed_n, moving_n) = prepare_intensities(fixed, moving, params.similarity);
     let fixed_pyr = pyramid::build(&fixed_n, params.levels);
     let moving_pyr = pyramid::build(&moving_n, params.levels);
+    drop((fixed_n, moving_n));
     let pyramid_s = t0.elapsed().as_secs_f64();
 
     // The optimised variable carried from level to level (displacement, or velocity).
@@ -128,7 +132,9 @@ pub fn register(
     let mut reports = Vec::new();
     let mind = MindParams { radius: params.mind_radius, dilation: params.mind_dilation };
     for (step, level) in (params.finest_level..params.levels).rev().enumerate() {
-        let grid = fixed_pyr[level].grid.clone();
+        let desc_grid = fixed_pyr[level].grid.clone();
+        let stride = if level == params.finest_level { params.finest_stride } else { 1 };
+        let lattice = desc_grid.strided(stride);
         observer(Progress { level, stage: Stage::Descriptors, iteration: 0, iterations: 0 });
         let t = Instant::now();
         let (fd, md) = match params.similarity {
@@ -136,25 +142,28 @@ pub fn register(
             Similarity::Ssd => (intensity_descriptor(&fixed_pyr[level]), intensity_descriptor(&moving_pyr[level])),
         };
         let descriptors_s = t.elapsed().as_secs_f64();
-        let level_mask = mask.map(|m| mask_on(m, &grid));
+        let level_mask = mask.map(|m| mask_on(m, &lattice));
         let init = match variable.take() {
-            Some(f) => resample::resample_field(&f, &grid),
-            None => Field::zeros(grid.clone()),
+            Some(f) => resample::resample_field(&f, &lattice),
+            None => Field::zeros(lattice.clone()),
         };
         let t = Instant::now();
         let problem = Problem {
-            shape: grid.shape(),
-            spacing: grid.spacing(),
+            shape: lattice.shape(),
+            spacing: lattice.spacing(),
+            stride,
+            desc_shape: desc_grid.shape(),
             channels: fd.channels,
             fixed: &fd.data,
             moving: &md.data,
             mask: level_mask.as_deref(),
             lambda: params.lambda,
         };
-        let iters = params.iterations[step];
-        let lr = params.step_size[step];
-        let outcome = optimise_level(&problem, init, iters, lr, params, level, observer)?;
+        let mut param = GaussianDense::new(lattice.shape(), params.update_sigma as f64);
+        let plan = LevelPlan { iterations: params.iterations[step], step_size: params.step_size[step], level };
+        let outcome = optimise_level(&problem, &mut param, init, &plan, params, observer)?;
         let optimise_s = t.elapsed().as_secs_f64();
+        drop((fd, md));
         observer(Progress { level, stage: Stage::Jacobian, iteration: 0, iterations: 0 });
         let t = Instant::now();
         let det = jacobian_determinant(&outcome.field);
@@ -162,8 +171,9 @@ pub fn register(
         let jacobian_s = t.elapsed().as_secs_f64();
         reports.push(LevelReport {
             level,
-            shape: grid.shape(),
-            spacing_mm: grid.spacing(),
+            shape: lattice.shape(),
+            spacing_mm: lattice.spacing(),
+            stride,
             iterations: outcome.iterations,
             evaluations: outcome.evaluations,
             energy_start: outcome.start.into(),
@@ -177,12 +187,19 @@ pub fn register(
     }
     let t = Instant::now();
     let mut variable = variable.expect("at least one level is optimised");
-    if params.finest_level > 0 {
+    if !variable.grid.same_as(&fixed.grid, 1e-6) {
         variable = resample::resample_field(&variable, &fixed.grid);
     }
     let field = displacement_of(&variable, params.diffeomorphic);
     let upsample_s = t.elapsed().as_secs_f64();
     Ok(Registration { field, levels: reports, pyramid_s, upsample_s })
+}
+
+/// What one level runs.
+struct LevelPlan {
+    iterations: usize,
+    step_size: f32,
+    level: usize,
 }
 
 struct LevelOutcome {
@@ -196,109 +213,128 @@ struct LevelOutcome {
     end: Energy,
 }
 
-/// Optimises one level from `init`. With `diffeomorphic` (Adam only), the optimised
-/// variable is a stationary velocity field and the returned field is its exponential
-/// (see [`svf`]).
+/// Buffers and closure state of one level's objective `θ ↦ E(u₀ + P·θ)`.
+struct LevelObjective<'a> {
+    problem: &'a Problem<'a>,
+    param: &'a mut dyn Parametrisation,
+    init: Field,
+    /// `u₀ + P·θ`: the displacement, or the velocity when diffeomorphic.
+    var: Field,
+    /// `exp(var)` when diffeomorphic.
+    u: Field,
+    scratch: Field,
+    grad_u: Vec<f32>,
+    sums: Vec<[f64; 2]>,
+    diffeomorphic: bool,
+    evaluations: usize,
+}
+
+impl LevelObjective<'_> {
+    /// Sets the variable from θ, evaluates the energy and writes `∂E/∂θ` into `grad_theta`.
+    /// With `diffeomorphic`, the gradient w.r.t. the velocity is approximated by the gradient
+    /// w.r.t. the displacement (common practice for stationary velocity fields).
+    fn eval(&mut self, theta: &[f32], grad_theta: &mut [f32]) -> Energy {
+        let var = self.var.data.as_slice_mut().expect("standard layout");
+        self.param.expand(theta, var);
+        var.iter_mut().zip(self.init.data.as_slice().expect("standard layout")).for_each(|(v, i)| *v += i);
+        let u = if self.diffeomorphic {
+            svf::exp_into(&self.var, &mut self.u, &mut self.scratch);
+            &self.u
+        } else {
+            &self.var
+        };
+        let e = self.problem.evaluate(as_slice(u), &mut self.grad_u, &mut self.sums);
+        self.param.adjoint(&self.grad_u, grad_theta);
+        self.evaluations += 1;
+        e
+    }
+}
+
+/// Optimises one level from `init` over `u = init + P·θ`. With `diffeomorphic`, the variable
+/// is a stationary velocity field and the returned field is its exponential (see [`svf`]).
 fn optimise_level(
     problem: &Problem,
+    param: &mut dyn Parametrisation,
     init: Field,
-    iters: usize,
-    lr: f32,
+    plan: &LevelPlan,
     params: &RegParams,
-    level: usize,
     observer: &mut dyn FnMut(Progress),
 ) -> Result<LevelOutcome, SolveError> {
-    let n3 = init.data.len();
-    let mut grad = vec![0.0f32; n3];
-    let mut sums = Vec::new();
+    let level = plan.level;
     let grid = init.grid.clone();
-    let mut theta = init;
-    let start = problem.evaluate(as_slice(&theta), &mut grad, &mut sums);
+    let n_theta = param.len();
+    let mut obj = LevelObjective {
+        problem,
+        param,
+        var: init.clone(),
+        u: Field::zeros(grid.clone()),
+        scratch: Field::zeros(grid.clone()),
+        init,
+        grad_u: vec![0.0; 3 * grid.len()],
+        sums: Vec::new(),
+        diffeomorphic: params.diffeomorphic,
+        evaluations: 0,
+    };
+    let mut theta = vec![0.0f32; n_theta];
+    let mut grad = vec![0.0f32; n_theta];
+    let start = obj.eval(&theta, &mut grad);
     if !start.total.is_finite() {
         return Err(SolveError::Diverged { level });
     }
     let mut iterations = 0;
-    let mut evaluations = 1;
     match params.optimiser {
         Optimiser::Adam => {
-            // Smoothed parametrisation: variable = init + G_σ·θ with θ = 0 at the start of the
-            // level, so the gradient w.r.t. θ is G_σ·∂E/∂variable (G_σ is a Gaussian, σ =
-            // `update_sigma` voxels): a preconditioner that keeps Adam's per-voxel steps smooth.
-            let init = theta;
-            let mut adam = Adam::new(n3, lr);
-            let mut th = vec![0.0f32; n3];
-            let mut cur = init.clone();
-            // With `diffeomorphic`, `cur` holds the velocity and `u` its exponential.
-            let mut u = Field::zeros(grid.clone());
-            let mut scratch = Field::zeros(grid.clone());
-            let mut best = f64::INFINITY;
-            let mut since_best = 0usize;
+            let mut adam = Adam::new(n_theta, plan.step_size);
             // Adam is scale-invariant but for ε: give it the gradient of the per-voxel energy.
-            let n_vox = (n3 / 3) as f32;
-            let kernel = sinew_grid::smooth::gaussian_kernel(params.update_sigma as f64);
-            let mut conv_scratch = Vec::new();
-            for it in 0..iters {
-                let energy = if params.diffeomorphic {
-                    svf::exp_into(&cur, &mut u, &mut scratch);
-                    problem.evaluate(as_slice(&u), &mut grad, &mut sums)
-                } else {
-                    problem.evaluate(as_slice(&cur), &mut grad, &mut sums)
-                };
-                evaluations += 1;
-                if !energy.total.is_finite() {
-                    return Err(SolveError::Diverged { level });
-                }
-                // Gradient w.r.t. the velocity approximated by the gradient w.r.t. the
-                // displacement (common practice for stationary velocity fields).
-                smooth_components(&mut grad, grid.shape(), &kernel, &mut conv_scratch);
-                grad.iter_mut().for_each(|g| *g *= n_vox);
-                adam.step(&mut th, &grad);
-                cur.data.as_slice_mut().expect("standard layout").copy_from_slice(&th);
-                smooth_components(cur.data.as_slice_mut().expect("standard layout"), grid.shape(), &kernel, &mut conv_scratch);
-                cur.data += &init.data;
-                iterations = it + 1;
-                observer(Progress { level, stage: Stage::Optimise, iteration: iterations, iterations: iters });
-                // Stop when the best energy has not improved by `tolerance` (relative) for 10
-                // iterations.
-                if energy.total < best * (1.0 - params.tolerance) {
-                    best = energy.total;
-                    since_best = 0;
-                } else {
-                    since_best += 1;
-                    if since_best >= 10 {
-                        break;
+            let n_vox = grid.len() as f32;
+            let mut best = start.total;
+            let mut since_best = 0usize;
+            for it in 0..plan.iterations {
+                if it > 0 {
+                    let e = obj.eval(&theta, &mut grad);
+                    if !e.total.is_finite() {
+                        return Err(SolveError::Diverged { level });
+                    }
+                    // Stop when the best energy has not improved by `tolerance` (relative)
+                    // for 10 iterations.
+                    if e.total < best * (1.0 - params.tolerance) {
+                        best = e.total;
+                        since_best = 0;
+                    } else {
+                        since_best += 1;
+                        if since_best >= 10 {
+                            break;
+                        }
                     }
                 }
+                grad.iter_mut().for_each(|g| *g *= n_vox);
+                adam.step(&mut theta, &grad);
+                iterations = it + 1;
+                observer(Progress { level, stage: Stage::Optimise, iteration: iterations, iterations: plan.iterations });
             }
-            theta = cur;
         }
         Optimiser::Lbfgs => {
-            let init_vec = theta.data.as_slice().expect("standard layout").to_vec();
-            let out = lbfgs::minimise(problem, init_vec, iters, params.tolerance)
-                .map_err(|message| SolveError::Lbfgs { level, message })?;
-            theta.data.as_slice_mut().expect("standard layout").copy_from_slice(&out.param);
+            let out = lbfgs::minimise(theta.clone(), plan.iterations, params.tolerance, &mut |th, g| {
+                obj.eval(th, g).total
+            })
+            .map_err(|message| SolveError::Lbfgs { level, message })?;
+            theta = out.param;
             iterations = out.iterations;
-            evaluations += out.evaluations;
-            observer(Progress { level, stage: Stage::Optimise, iteration: iters, iterations: iters });
+            observer(Progress { level, stage: Stage::Optimise, iteration: plan.iterations, iterations: plan.iterations });
         }
     }
+    // The energy and field of the final θ.
+    let end = obj.eval(&theta, &mut grad);
+    if !end.total.is_finite() {
+        return Err(SolveError::Diverged { level });
+    }
+    let evaluations = obj.evaluations;
+    let mut variable = obj.var;
     if params.field_sigma > 0.0 {
-        smooth_field(&mut theta, params.field_sigma as f64);
+        smooth_field(&mut variable, params.field_sigma as f64);
     }
-    let field = displacement_of(&theta, params.diffeomorphic);
-    // The energy of the field actually returned (after integration and smoothing).
-    let end = problem.evaluate(as_slice(&field), &mut grad, &mut sums);
-    Ok(LevelOutcome { variable: theta, field, iterations, evaluations: evaluations + 1, start, end })
-}
-
-/// Gaussian smoothing (σ in voxels) of the three components of a component-first buffer.
-fn smooth_components(buf: &mut [f32], shape: [usize; 3], kernel: &[f32], scratch: &mut Vec<f32>) {
-    let n: usize = shape.iter().product();
-    for comp in buf.chunks_exact_mut(n) {
-        for axis in 0..3 {
-            sinew_grid::smooth::convolve_axis_slice(comp, shape, axis, kernel, scratch);
-        }
-    }
+    let field = displacement_of(&variable, params.diffeomorphic);
+    Ok(LevelOutcome { variable, field, iterations, evaluations, start, end })
 }
 
 /// The displacement of the optimised variable: itself, or `exp(v)` when diffeomorphic.
@@ -314,11 +350,9 @@ fn displacement_of(variable: &Field, diffeomorphic: bool) -> Field {
 
 /// Gaussian smoothing of each component, σ in voxels.
 fn smooth_field(f: &mut Field, sigma_vox: f64) {
-    for d in 0..3 {
-        let mut comp = f.data.index_axis(ndarray::Axis(0), d).to_owned();
-        sinew_grid::smooth::gaussian_smooth(&mut comp, [1.0; 3], sigma_vox);
-        f.data.index_axis_mut(ndarray::Axis(0), d).assign(&comp);
-    }
+    let mut p = GaussianDense::new(f.grid.shape(), sigma_vox);
+    let copy = f.data.as_slice().expect("standard layout").to_vec();
+    p.expand(&copy, f.data.as_slice_mut().expect("standard layout"));
 }
 
 fn as_slice(f: &Field) -> &[f32] {

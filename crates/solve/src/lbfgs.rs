@@ -11,79 +11,70 @@ use argmin::core::{CostFunction, Error, Executor, Gradient, State};
 use argmin::solver::linesearch::MoreThuenteLineSearch;
 use argmin::solver::quasinewton::LBFGS;
 
-use crate::kernel::{Energy, Problem};
 
-/// argmin's view of one level's objective; caches the last evaluation because argmin asks
-/// for the cost and the gradient of the same point separately.
-struct LevelObjective<'a> {
-    problem: &'a Problem<'a>,
-    cache: Mutex<Cache>,
+/// The objective as argmin sees it: `eval(θ, ∂E/∂θ) -> E`, behind a lock because argmin
+/// takes `&self`; the last evaluation is cached because argmin asks for the cost and the
+/// gradient of the same point separately.
+struct Objective<'a> {
+    inner: Mutex<Inner<'a>>,
 }
 
-struct Cache {
+type EvalFn<'a> = dyn FnMut(&[f32], &mut [f32]) -> f64 + Send + 'a;
+
+struct Inner<'a> {
+    eval: &'a mut EvalFn<'a>,
     param: Vec<f32>,
-    energy: Energy,
+    cost: f64,
     grad: Vec<f32>,
-    sums: Vec<[f64; 2]>,
-    evaluations: usize,
+    valid: bool,
 }
 
-impl LevelObjective<'_> {
-    fn eval(&self, p: &[f32]) -> (f32, Option<Vec<f32>>, bool) {
-        let mut c = self.cache.lock().expect("no poisoned lock");
-        let fresh = c.evaluations == 0 || c.param.as_slice() != p;
-        if fresh {
-            let Cache { grad, sums, .. } = &mut *c;
-            let e = self.problem.evaluate(p, grad, sums);
-            c.energy = e;
-            c.param.clear();
-            c.param.extend_from_slice(p);
-            c.evaluations += 1;
+impl Inner<'_> {
+    fn ensure(&mut self, p: &[f32]) {
+        if !self.valid || self.param.as_slice() != p {
+            self.cost = (self.eval)(p, &mut self.grad);
+            self.param.clear();
+            self.param.extend_from_slice(p);
+            self.valid = true;
         }
-        (c.energy.total as f32, None, fresh)
     }
 }
 
-impl CostFunction for LevelObjective<'_> {
+impl CostFunction for Objective<'_> {
     type Param = Vec<f32>;
     type Output = f32;
     fn cost(&self, p: &Self::Param) -> Result<f32, Error> {
-        Ok(self.eval(p).0)
+        let mut inner = self.inner.lock().expect("no poisoned lock");
+        inner.ensure(p);
+        Ok(inner.cost as f32)
     }
 }
 
-impl Gradient for LevelObjective<'_> {
+impl Gradient for Objective<'_> {
     type Param = Vec<f32>;
     type Gradient = Vec<f32>;
     fn gradient(&self, p: &Self::Param) -> Result<Vec<f32>, Error> {
-        self.eval(p);
-        Ok(self.cache.lock().expect("no poisoned lock").grad.clone())
+        let mut inner = self.inner.lock().expect("no poisoned lock");
+        inner.ensure(p);
+        Ok(inner.grad.clone())
     }
 }
 
 /// Outcome of [`minimise`].
 pub struct LbfgsOutcome {
-    /// The best field found.
+    /// The best parameters found.
     pub param: Vec<f32>,
     /// Iterations done.
     pub iterations: usize,
-    /// Objective evaluations (each is one pass of the fused kernel).
-    pub evaluations: usize,
 }
 
 /// Runs L-BFGS (memory 5) from `init` for at most `max_iters` iterations, stopping when the
-/// relative cost change falls below `tol`.
-pub fn minimise(problem: &Problem, init: Vec<f32>, max_iters: usize, tol: f64) -> Result<LbfgsOutcome, String> {
+/// relative cost change falls below `tol`; `eval(θ, g)` returns the cost and writes the
+/// gradient into `g`.
+pub fn minimise<'a>(init: Vec<f32>, max_iters: usize, tol: f64, eval: &'a mut EvalFn<'a>) -> Result<LbfgsOutcome, String> {
     let n = init.len();
-    let obj = LevelObjective {
-        problem,
-        cache: Mutex::new(Cache {
-            param: Vec::with_capacity(n),
-            energy: Energy::default(),
-            grad: vec![0.0; n],
-            sums: Vec::new(),
-            evaluations: 0,
-        }),
+    let obj = Objective {
+        inner: Mutex::new(Inner { eval, param: Vec::with_capacity(n), cost: 0.0, grad: vec![0.0; n], valid: false }),
     };
     let linesearch = MoreThuenteLineSearch::new();
     let solver = LBFGS::new(linesearch, 5)
@@ -97,6 +88,5 @@ pub fn minimise(problem: &Problem, init: Vec<f32>, max_iters: usize, tol: f64) -
         .map_err(|e| e.to_string())?;
     let iterations = res.state().get_iter() as usize;
     let param = res.state().get_best_param().cloned().ok_or("L-BFGS returned no parameters")?;
-    let evaluations = res.problem().problem.as_ref().map_or(0, |p| p.cache.lock().map(|c| c.evaluations).unwrap_or(0));
-    Ok(LbfgsOutcome { param, iterations, evaluations })
+    Ok(LbfgsOutcome { param, iterations })
 }

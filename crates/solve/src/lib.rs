@@ -10,6 +10,7 @@ mod driver;
 mod error;
 pub mod kernel;
 pub mod lbfgs;
+pub mod param;
 mod params;
 pub mod svf;
 
