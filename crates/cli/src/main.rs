@@ -30,6 +30,8 @@ enum Command {
     Register(cmd::register::RegisterArgs),
     /// Apply a displacement field to a scan or a label map.
     Warp(cmd::warp::WarpArgs),
+    /// Bring scans and label maps onto a common grid: orient, resample, crop/pad, window, scale.
+    Prep(cmd::prep::PrepArgs),
 }
 
 fn main() -> ExitCode {
@@ -39,6 +41,7 @@ fn main() -> ExitCode {
         Command::Demo(a) => cmd::demo::run(a),
         Command::Register(a) => cmd::register::run(a),
         Command::Warp(a) => cmd::warp::run(a),
+        Command::Prep(a) => cmd::prep::run(a),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

@@ -2,5 +2,6 @@
 pub mod common;
 pub mod demo;
 pub mod info;
+pub mod prep;
 pub mod register;
 pub mod warp;
