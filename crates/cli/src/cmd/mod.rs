@@ -3,5 +3,7 @@ pub mod common;
 pub mod demo;
 pub mod info;
 pub mod prep;
+pub mod qc;
 pub mod register;
+pub mod report;
 pub mod warp;
