@@ -273,3 +273,19 @@ def make_score_hd95(out_dir):
         json.dump({"source": "scipy.ndimage.distance_transform_edt + np.percentile (scripts/ref/score_surface.py)",
                    "cases": cases}, f, sort_keys=True)
         f.write("\n")
+
+
+def make_bspline_eval(out_dir):
+    """Cubic B-spline evaluation of seeded random control values on a 13x9x11 lattice with
+    control spacing (3, 2.5, 4) voxels, by scipy.interpolate.BSpline (scripts/ref/bspline_eval.py)."""
+    import os
+
+    import numpy as np
+
+    ref = _ref("bspline_eval")
+    rng = np.random.default_rng(2024)
+    shape, spacing = (13, 9, 11), (3.0, 2.5, 4.0)
+    n_c = [int(np.floor((n - 1) / s)) + 4 for n, s in zip(shape, spacing)]
+    phi = (rng.random([3] + n_c) * 4.0 - 2.0).astype(np.float32)
+    np.save(os.path.join(out_dir, "bspline_eval_phi.npy"), phi)
+    np.save(os.path.join(out_dir, "bspline_eval_dense.npy"), ref.evaluate(phi, shape, spacing))

@@ -5,6 +5,7 @@
 //! `warped(x) = moving(x + u(x))`, with `u` in voxels along the array axes `(i, j, k)`.
 #![deny(missing_docs)]
 
+pub mod bspline;
 mod error;
 pub mod jacobian;
 pub mod warp;
