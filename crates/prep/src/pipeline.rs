@@ -259,7 +259,13 @@ pub fn prepare(mut image: Image, mut labels: Option<LabelMap>, steps: &Steps) ->
         image = crop_pad(&image, &p, pad);
         labels = labels.map(|l| crop_pad(&l, &p, 0));
         mask = mask.map(|(m, lo, hi)| (crop_pad(&m, &p, 0), lo, hi));
-        log.push(StepRecord::CropPad { centre: cp.centre, centre_voxel, offset: p.offset, pad, grid: (&p.grid).into() });
+        log.push(StepRecord::CropPad {
+            centre: cp.centre,
+            centre_voxel,
+            offset: p.offset,
+            pad,
+            grid: (&p.grid).into(),
+        });
     }
     let mask = mask.map(|(m, _, _)| m);
     if let Some(w) = steps.window {

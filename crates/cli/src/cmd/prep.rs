@@ -23,8 +23,7 @@ use anyhow::{bail, Context, Result};
 use clap::{Args, ValueEnum};
 use serde::Serialize;
 use sinew_prep::{
-    prepare, AxisCodes, BodyParams, Centre, CropPadStep, GridRecord, Recipe, Resample, Scale, StepRecord, Steps,
-    Window,
+    prepare, AxisCodes, BodyParams, Centre, CropPadStep, GridRecord, Recipe, Resample, Scale, StepRecord, Steps, Window,
 };
 
 use crate::cmd::common;
@@ -125,7 +124,8 @@ fn parse_list<T: std::str::FromStr, const N: usize>(s: &str) -> Result<[T; N], S
     if parts.len() != N {
         return Err(format!("expected {N} comma-separated numbers, got {s:?}"));
     }
-    let vals: Vec<T> = parts.iter().map(|p| p.parse::<T>().map_err(|_| format!("not a number: {p:?}"))).collect::<Result<_, _>>()?;
+    let vals: Vec<T> =
+        parts.iter().map(|p| p.parse::<T>().map_err(|_| format!("not a number: {p:?}"))).collect::<Result<_, _>>()?;
     vals.try_into().map_err(|_| "length checked above".to_string())
 }
 
@@ -303,7 +303,10 @@ fn collect_jobs(inputs: &[PathBuf], labels: &[PathBuf]) -> Result<Vec<Job>> {
     let mut jobs: Vec<Job> = images.into_iter().map(|image| Job { image, labels: None }).collect();
     if !labels.is_empty() {
         if let Some(l) = named_labels.first() {
-            bail!("{}: label maps found by name in an input folder while --labels was given; use one or the other", l.display());
+            bail!(
+                "{}: label maps found by name in an input folder while --labels was given; use one or the other",
+                l.display()
+            );
         }
         let mut lab = Vec::new();
         for l in labels {
@@ -336,7 +339,9 @@ fn collect_jobs(inputs: &[PathBuf], labels: &[PathBuf]) -> Result<Vec<Job>> {
             match found {
                 Some(j) if j.labels.is_none() => j.labels = Some(l),
                 Some(j) => bail!("{}: a second label map for {}", l.display(), j.image.display()),
-                None => bail!("{}: no image {base}_image.nii(.gz) or {base}.nii(.gz) beside this label map", l.display()),
+                None => {
+                    bail!("{}: no image {base}_image.nii(.gz) or {base}.nii(.gz) beside this label map", l.display())
+                }
             }
         }
     }
@@ -429,7 +434,8 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
     std::fs::create_dir_all(&args.out)
         .with_context(|| format!("{}: cannot create the output folder", args.out.display()))?;
     let staging = Staging(args.out.join(format!(".sinew-prep-{}", std::process::id())));
-    std::fs::create_dir(&staging.0).with_context(|| format!("{}: cannot create a staging folder", staging.0.display()))?;
+    std::fs::create_dir(&staging.0)
+        .with_context(|| format!("{}: cannot create a staging folder", staging.0.display()))?;
     let pb = ui::progress(jobs.len() as u64, "preparing", args.quiet);
     let say = |line: String| {
         if !args.quiet {
