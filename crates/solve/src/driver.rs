@@ -9,7 +9,8 @@ use sinew_transform::{jacobian_determinant, jacobian_stats, JacobianStats};
 
 use crate::kernel::{Energy, Problem};
 use crate::param::{GaussianDense, Parametrisation};
-use crate::{adam::Adam, lbfgs, svf, Optimiser, RegParams, Similarity, SolveError};
+use crate::bspline::BsplineModel;
+use crate::{adam::Adam, lbfgs, svf, Model, Optimiser, RegParams, Similarity, SolveError};
 
 /// A stage of the registration, reported to the observer.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
@@ -159,7 +160,10 @@ pub fn register(
             mask: level_mask.as_deref(),
             lambda: params.lambda,
         };
-        let mut param = GaussianDense::new(lattice.shape(), params.update_sigma as f64);
+        let mut param: Box<dyn Parametrisation> = match params.model {
+            Model::Dense => Box::new(GaussianDense::new(lattice.shape(), params.update_sigma as f64)),
+            Model::Bspline => Box::new(BsplineModel::new(&lattice, params.grid_spacing_mm, params.bending)),
+        };
         let plan = LevelPlan { iterations: params.iterations[step], step_size: params.step_size[step], level };
         let outcome = optimise_level(&problem, &mut param, init, &plan, params, observer)?;
         let optimise_s = t.elapsed().as_secs_f64();
@@ -243,8 +247,9 @@ impl LevelObjective<'_> {
         } else {
             &self.var
         };
-        let e = self.problem.evaluate(as_slice(u), &mut self.grad_u, &mut self.sums);
+        let mut e = self.problem.evaluate(as_slice(u), &mut self.grad_u, &mut self.sums);
         self.param.adjoint(&self.grad_u, grad_theta);
+        e.total += self.param.penalty(theta, grad_theta);
         self.evaluations += 1;
         e
     }

@@ -6,6 +6,7 @@
 #![deny(missing_docs)]
 
 pub mod adam;
+pub mod bspline;
 mod driver;
 mod error;
 pub mod kernel;
@@ -16,4 +17,4 @@ pub mod svf;
 
 pub use driver::{register, EnergyReport, LevelReport, Progress, Registration, Stage};
 pub use error::SolveError;
-pub use params::{Optimiser, RegParams, Similarity, PRESETS};
+pub use params::{AffineMode, Model, Optimiser, RegParams, Similarity, PRESETS};

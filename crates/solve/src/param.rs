@@ -18,6 +18,26 @@ pub trait Parametrisation: Send {
     fn expand(&mut self, theta: &[f32], out: &mut [f32]);
     /// `out = Pᵀ·g` (`out` has [`len`](Parametrisation::len) values).
     fn adjoint(&mut self, g: &[f32], out: &mut [f32]);
+    /// A penalty on θ itself (e.g. the bending energy of a control grid): returns its
+    /// weighted value and adds its gradient to `grad`. None by default.
+    fn penalty(&mut self, _theta: &[f32], _grad: &mut [f32]) -> f64 {
+        0.0
+    }
+}
+
+impl<P: Parametrisation + ?Sized> Parametrisation for Box<P> {
+    fn len(&self) -> usize {
+        (**self).len()
+    }
+    fn expand(&mut self, theta: &[f32], out: &mut [f32]) {
+        (**self).expand(theta, out)
+    }
+    fn adjoint(&mut self, g: &[f32], out: &mut [f32]) {
+        (**self).adjoint(g, out)
+    }
+    fn penalty(&mut self, theta: &[f32], grad: &mut [f32]) -> f64 {
+        (**self).penalty(theta, grad)
+    }
 }
 
 /// The dense model: `P = G_σ`, a separable Gaussian of σ voxels applied to each component

@@ -26,6 +26,29 @@ pub enum Similarity {
     Ssd,
 }
 
+/// The transform model of the deformable stage.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Model {
+    /// A displacement vector per lattice point (updates smoothed by `update_sigma`).
+    Dense,
+    /// A cubic B-spline control grid every `grid_spacing_mm` ("Nonrigid registration using
+    /// free-form deformations: application to breast MR images", IEEE TMI 1999).
+    Bspline,
+}
+
+/// The linear stage run before the deformable one.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum AffineMode {
+    /// No linear stage: the deformable stage starts from the identity.
+    None,
+    /// Rotation and translation (6 parameters).
+    Rigid,
+    /// A general affine map (12 parameters).
+    Affine,
+}
+
 /// Every setting of a registration. Levels are counted from the finest (0 = the input grid).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
@@ -64,6 +87,14 @@ pub struct RegParams {
     /// Adam only: σ (voxels of each level) of the Gaussian that smooths each update
     /// (the field is `init + G_σ·θ`); 0 = plain per-voxel Adam.
     pub update_sigma: f32,
+    /// The transform model of the deformable stage.
+    pub model: Model,
+    /// B-spline model: control point spacing in mm (the same at every level).
+    pub grid_spacing_mm: f64,
+    /// B-spline model: weight of the bending energy of the control grid (0 = off).
+    pub bending: f32,
+    /// The linear stage before the deformable one.
+    pub affine: AffineMode,
 }
 
 impl Default for RegParams {
@@ -93,6 +124,10 @@ impl RegParams {
             diffeomorphic: false,
             field_sigma: 0.0,
             update_sigma: 1.0,
+            model: Model::Dense,
+            grid_spacing_mm: 20.0,
+            bending: 0.0,
+            affine: AffineMode::None,
         };
         match name {
             "default" => Some(base),
@@ -148,6 +183,12 @@ impl RegParams {
         }
         if !(self.field_sigma.is_finite() && self.field_sigma >= 0.0) {
             return bad("field_sigma", format!("{} must be ≥ 0", self.field_sigma));
+        }
+        if !(self.grid_spacing_mm.is_finite() && self.grid_spacing_mm > 0.0) {
+            return bad("grid_spacing_mm", format!("{} must be a positive length", self.grid_spacing_mm));
+        }
+        if !(self.bending.is_finite() && self.bending >= 0.0) {
+            return bad("bending", format!("{} must be finite and ≥ 0", self.bending));
         }
         Ok(())
     }
