@@ -67,7 +67,11 @@ pub fn read_scores(path: &Path) -> Result<Vec<ScoreRow>, QcError> {
     let mut rd = csv::ReaderBuilder::new().flexible(false).from_path(path).map_err(|e| bad(e.to_string()))?;
     let headers = rd.headers().map_err(|e| bad(e.to_string()))?.clone();
     let col = |name: &str| headers.iter().position(|h| h.trim() == name);
-    let need = |name: &str| col(name).ok_or_else(|| bad(format!("no column '{name}' (columns: {})", headers.iter().collect::<Vec<_>>().join(", "))));
+    let need = |name: &str| {
+        col(name).ok_or_else(|| {
+            bad(format!("no column '{name}' (columns: {})", headers.iter().collect::<Vec<_>>().join(", ")))
+        })
+    };
     let (c_method, c_fixed, c_moving, c_label) = (need("method")?, need("fixed")?, need("moving")?, need("label")?);
     let (c_dice, c_hd, c_fold, c_sd) = (need("dice")?, need("hd95_mm")?, need("folding")?, need("sdlogj")?);
     let (c_name, c_rt) = (col("name"), col("runtime_s"));
@@ -216,19 +220,22 @@ fn find_files(dir: &Path, name: &str, depth: usize) -> Vec<PathBuf> {
     out
 }
 
-/// The sheet whose folder name contains both ids (the pair's own folder), preferring one
-/// whose path also names the method.
+/// The sheet whose folder name contains both ids in order (the pair's own folder) and whose
+/// path below `dir` names the method; for the baseline `sinew` (whose `register` writes the
+/// sheets) a sheet in a folder without a method name is taken too.
 fn find_sheet(sheets: &[PathBuf], dir: &Path, method: &str, fixed: &str, moving: &str) -> Option<PathBuf> {
     let matches: Vec<&PathBuf> = sheets
         .iter()
         .filter(|p| {
-            p.parent().and_then(|d| d.file_name()).map(|n| n.to_string_lossy()).is_some_and(|n| {
-                n.contains(fixed) && n.contains(moving) && n.find(fixed) < n.find(moving)
-            })
+            p.parent()
+                .and_then(|d| d.file_name())
+                .map(|n| n.to_string_lossy())
+                .is_some_and(|n| n.contains(fixed) && n.contains(moving) && n.find(fixed) < n.find(moving))
         })
         .collect();
     let named = |p: &PathBuf| p.strip_prefix(dir).unwrap_or(p).components().any(|c| c.as_os_str() == method);
-    matches.iter().copied().find(|p| named(p)).or(matches.first().copied()).cloned()
+    let fallback = if method == "sinew" { matches.first().copied() } else { None };
+    matches.iter().copied().find(|p| named(p)).or(fallback).cloned()
 }
 
 /// A per-label metric.
@@ -350,12 +357,8 @@ fn jacobian_chart<DB: DrawingBackend>(area: &DrawingArea<DB, Shift>, c: &Cohort,
     let what = format!("jacobian {method}");
     let err = plot_err(&what);
     area.fill(&WHITE).map_err(&err)?;
-    let pts: Vec<(f64, f64)> = c
-        .pairs
-        .iter()
-        .filter(|p| &p.method == method)
-        .filter_map(|p| Some((100.0 * p.folding?, p.sdlogj?)))
-        .collect();
+    let pts: Vec<(f64, f64)> =
+        c.pairs.iter().filter(|p| &p.method == method).filter_map(|p| Some((100.0 * p.folding?, p.sdlogj?))).collect();
     let xmax = pts.iter().map(|p| p.0).fold(0.0, f64::max).max(0.01) * 1.15;
     let ymax = pts.iter().map(|p| p.1).fold(0.0, f64::max).max(0.01) * 1.15;
     let mut chart = ChartBuilder::on(area)
@@ -497,7 +500,9 @@ pub fn write_report(dir: &Path, out: &Path, caution: &str) -> Result<ReportFiles
     let mut pngs = Vec::new();
     for metric in [Metric::Dice, Metric::Hd95] {
         let range = metric_range(&cohort, metric);
-        let img = raster_grid(cohort.labels.len(), 4, |a, n| box_chart(a, &cohort, &cohort.labels[n], metric, range.clone()))?;
+        let img = raster_grid(cohort.labels.len(), 4, |a, n| {
+            box_chart(a, &cohort, &cohort.labels[n], metric, range.clone())
+        })?;
         let p = out_dir.join(format!("{stem}_{}.png", metric.key()));
         crate::write_png(&p, &img)?;
         pngs.push(p);
@@ -524,7 +529,8 @@ pub fn write_report(dir: &Path, out: &Path, caution: &str) -> Result<ReportFiles
     let _ = write!(w, "<p class=\"legend\">");
     for (i, m) in cohort.methods.iter().enumerate() {
         let c = method_colour(i);
-        let _ = write!(w, "<span><i class=\"sw\" style=\"background:rgb({},{},{})\"></i>{}</span>", c.0, c.1, c.2, esc(m));
+        let _ =
+            write!(w, "<span><i class=\"sw\" style=\"background:rgb({},{},{})\"></i>{}</span>", c.0, c.1, c.2, esc(m));
     }
     let _ = writeln!(w, "</p>");
     for metric in [Metric::Dice, Metric::Hd95] {
@@ -618,7 +624,11 @@ fn summary_table(w: &mut String, c: &Cohort) {
         let mean = |v: Vec<f64>| mean_sd_median(&v).0;
         let rt: Vec<f64> = {
             let mut seen = std::collections::BTreeSet::new();
-            c.rows.iter().filter(|r| &r.method == m && seen.insert((&r.fixed, &r.moving))).filter_map(|r| r.runtime_s).collect()
+            c.rows
+                .iter()
+                .filter(|r| &r.method == m && seen.insert((&r.fixed, &r.moving)))
+                .filter_map(|r| r.runtime_s)
+                .collect()
         };
         let _ = writeln!(
             w,
@@ -676,7 +686,9 @@ fn read_summary(path: &Path) -> Result<Option<(String, String)>, QcError> {
         serde_json::from_str(&text).map_err(|e| QcError::Table { path: path.to_path_buf(), reason: e.to_string() })?;
     let records = match &v {
         serde_json::Value::Array(a) => Some(a),
-        serde_json::Value::Object(o) => o.values().find_map(|x| x.as_array().filter(|a| a.iter().all(|r| r.is_object()))),
+        serde_json::Value::Object(o) => {
+            o.values().find_map(|x| x.as_array().filter(|a| a.iter().all(|r| r.is_object())))
+        }
         _ => None,
     };
     let Some(records) = records.filter(|r| !r.is_empty()) else { return Ok(None) };

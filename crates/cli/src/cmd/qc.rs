@@ -46,7 +46,7 @@ pub struct QcArgs {
     #[arg(long, value_name = "NII")]
     pub moving_labels: Option<PathBuf>,
     /// Voxel (i,j,k) of the fixed grid the three planes pass through.
-    #[arg(long, value_name = "I,J,K", value_delimiter = ',', num_args = 3)]
+    #[arg(long, value_name = "I,J,K", value_delimiter = ',')]
     pub point: Option<Vec<usize>>,
     /// Grey window `lo,hi` (default -200,300: soft tissue in Hounsfield units), or `auto`
     /// for the 1st to 99th percentile of the fixed scan.
@@ -93,7 +93,8 @@ pub fn run(args: QcArgs) -> anyhow::Result<()> {
     inputs_list.extend(args.fixed_labels.as_deref());
     inputs_list.extend(args.moving_labels.as_deref());
     sinew_io::atomic::ensure_not_input(&args.out, &inputs_list)?;
-    let inputs = Inputs::load(&args.fixed, &args.moving, args.fixed_labels.as_deref(), args.moving_labels.as_deref(), None)?;
+    let inputs =
+        Inputs::load(&args.fixed, &args.moving, args.fixed_labels.as_deref(), args.moving_labels.as_deref(), None)?;
     let fopts = FieldReadOptions { units: args.units.map(FieldUnits::from), ..Default::default() };
     let (field, _) = sinew_io::read_field(&args.field, fopts)?;
     if !field.is_finite() {
@@ -113,7 +114,8 @@ pub fn run(args: QcArgs) -> anyhow::Result<()> {
         None => None,
     };
     let window = args.window.as_deref().map(parse_window).transpose()?.unwrap_or(Window::CT_SOFT);
-    let opts = QcOptions { point, window, panel_px: args.panel_px, grid_every: args.grid_every, ..QcOptions::default() };
+    let opts =
+        QcOptions { point, window, panel_px: args.panel_px, grid_every: args.grid_every, ..QcOptions::default() };
     let title = args.title.clone().unwrap_or_else(|| pair_title(&args.fixed, &args.moving));
     let moving_on_fixed = on_fixed_grid(&inputs.moving, &inputs.fixed);
     let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
@@ -157,7 +159,8 @@ fn render(
     title: String,
     opts: &QcOptions,
 ) -> anyhow::Result<sinew_qc::QcSheet> {
-    let moving_labels_on_fixed = inputs.moving_labels.as_ref().map(|l| resample::resample_labels(l, &inputs.fixed.grid));
+    let moving_labels_on_fixed =
+        inputs.moving_labels.as_ref().map(|l| resample::resample_labels(l, &inputs.fixed.grid));
     let input = QcInput {
         fixed: &inputs.fixed,
         moving_on_fixed,
@@ -178,7 +181,6 @@ fn render(
 /// `moving_on_fixed` the moving scan on the fixed grid; `warped`, `field`, `jacdet` and
 /// `warped_labels` the registration's results on the fixed grid.
 #[allow(clippy::too_many_arguments)]
-#[allow(dead_code)] // called by `register` (cmd/register.rs) to write qc.png beside a pair's outputs
 pub fn qc_for_pair(
     out_dir: &Path,
     fixed: &Path,

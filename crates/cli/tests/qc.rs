@@ -1,0 +1,96 @@
+//! `sinew qc` end to end on the small demo cohort with a constructed field: the PNG it
+//! writes (size read from the PNG header as the PNG specification lays it out) and its
+//! refusals of bad input.
+
+use std::path::Path;
+use std::process::{Command, Output};
+
+use sinew_grid::Field;
+
+fn sinew(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_sinew")).args(args).output().expect("run sinew")
+}
+
+fn text(b: &[u8]) -> String {
+    String::from_utf8_lossy(b).into_owned()
+}
+
+/// Width and height from a PNG file: 8-byte signature, then the IHDR chunk (length, "IHDR",
+/// width and height as big-endian u32) (PNG specification, ISO/IEC 15948, section 11.2.2).
+fn png_size(p: &Path) -> (u32, u32) {
+    let b = std::fs::read(p).unwrap();
+    assert_eq!(&b[..8], b"\x89PNG\r\n\x1a\n", "PNG signature");
+    assert_eq!(&b[12..16], b"IHDR");
+    (u32::from_be_bytes(b[16..20].try_into().unwrap()), u32::from_be_bytes(b[20..24].try_into().unwrap()))
+}
+
+/// Two small demo subjects and a smooth field on subject 0's grid (voxel units).
+fn setup(dir: &Path) -> (String, String, String, String, String) {
+    let out = sinew(&["demo", "--small", "--subjects", "2", "--out", dir.join("data").to_str().unwrap()]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = |n: &str| dir.join("data").join(n).to_str().unwrap().to_string();
+    let fixed = sinew_io::read_image(Path::new(&s("subject_00_image.nii.gz"))).unwrap();
+    let mut f = Field::zeros(fixed.grid.clone());
+    let [nx, ny, nz] = fixed.grid.shape();
+    for (n, v) in f.components_mut()[2].iter_mut().enumerate() {
+        let (i, j) = (n / (ny * nz), (n / nz) % ny);
+        *v = 1.5 * ((i as f32 / nx as f32) * std::f32::consts::PI).sin() * ((j as f32 / ny as f32) * 3.0).cos();
+    }
+    let field = dir.join("field.nii.gz");
+    sinew_io::write_field(&field, &f, sinew_io::FieldUnits::Voxel).unwrap();
+    (
+        s("subject_00_image.nii.gz"),
+        s("subject_01_image.nii.gz"),
+        s("subject_00_labels.nii.gz"),
+        s("subject_01_labels.nii.gz"),
+        field.to_str().unwrap().to_string(),
+    )
+}
+
+#[test]
+fn writes_a_sheet_and_refuses_bad_input() {
+    let tmp = tempfile::tempdir().unwrap();
+    let (fixed, moving, fl, ml, field) = setup(tmp.path());
+    let png = tmp.path().join("qc.png");
+    let p = png.to_str().unwrap();
+    let base = ["qc", "-f", &fixed, "-m", &moving, "--field", &field];
+    let out = sinew(&[&base[..], &["--fixed-labels", &fl, "--moving-labels", &ml, "-o", p]].concat());
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let (w, h) = png_size(&png);
+    // Six panels of at least 120 px side by side, three rows: a sheet, not a thumbnail.
+    assert!(w > 6 * 120 && h > 3 * 100, "{w}×{h}");
+    // The demo grid is 72×56×96 at 4 mm; the labelled centre is near the middle.
+    assert!(text(&out.stdout).contains("planes through voxel"), "{}", text(&out.stdout));
+
+    // A chosen point and window, without labels.
+    let png2 = tmp.path().join("qc2.png");
+    let out =
+        sinew(&[&base[..], &["--point", "10,20,30", "--window", "-100,200", "-o", png2.to_str().unwrap()]].concat());
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(text(&out.stdout).contains("[10, 20, 30]"));
+    assert_eq!(png_size(&png2), (w, h), "the same grid gives the same layout");
+
+    // Refusals: exit code 2, one line naming the problem, nothing written.
+    let bad = tmp.path().join("bad.png");
+    let b = bad.to_str().unwrap();
+    for (extra, needle) in [
+        (vec!["--point", "10,20,500"], "outside"),
+        (vec!["--window", "300,-200"], "lo < hi"),
+        (vec!["--window", "a,b"], "not a number"),
+    ] {
+        let out = sinew(&[&base[..], &extra[..], &["-o", b]].concat());
+        assert_eq!(out.status.code(), Some(2), "{extra:?}");
+        assert!(text(&out.stderr).contains(needle), "{extra:?}: {}", text(&out.stderr));
+        assert!(!bad.exists());
+    }
+    // A field on another grid (the moving scan's field would be, for a different shape).
+    let other = tmp.path().join("other_field.nii.gz");
+    let g = sinew_grid::Grid::axis_aligned([10, 10, 10], [4.0; 3], [0.0; 3]);
+    sinew_io::write_field(&other, &Field::zeros(g), sinew_io::FieldUnits::Voxel).unwrap();
+    let out = sinew(&["qc", "-f", &fixed, "-m", &moving, "--field", other.to_str().unwrap(), "-o", b]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("fixed grid"), "{}", text(&out.stderr));
+    // Never overwrite an input.
+    let out = sinew(&["qc", "-f", &fixed, "-m", &moving, "--field", &field, "-o", &moving]);
+    assert_eq!(out.status.code(), Some(2));
+}
