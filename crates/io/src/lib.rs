@@ -40,7 +40,7 @@ pub use error::IoError;
 pub use header::{affine_to_qform, qform_affine, AffineSource, DataType, HeaderInfo, INTENT_DISPVECT};
 pub use npy::{read_npy_field, write_npy_field, NpyLayout};
 pub use read::{
-    read_field, read_header, read_image, read_image_with, read_labels, read_labels_with, read_values, FieldReadOptions,
-    ReadOptions,
+    read_field, read_field_from_bytes, read_header, read_header_from_bytes, read_image, read_image_from_bytes,
+    read_image_with, read_labels, read_labels_from_bytes, read_labels_with, read_values, FieldReadOptions, ReadOptions,
 };
 pub use write::{write_field, write_image, write_labels, FieldUnits};

@@ -47,15 +47,39 @@ impl HeaderInfo {
     }
 }
 
-/// Opens `path`, detecting gzip by its magic bytes `1f 8b`; returns the reader, whether it is
-/// compressed, and the file length in bytes.
-fn open(path: &Path) -> Result<(Box<dyn Read>, bool, u64), IoError> {
-    let file = File::open(path).map_err(|e| IoError::os(path, "cannot open", e))?;
-    let len = file.metadata().map_err(|e| IoError::os(path, "cannot stat", e))?.len();
-    let mut r = BufReader::with_capacity(1 << 16, file);
+/// An opened input: the (possibly decompressing) reader, whether it is gzip, and the length
+/// in bytes of what is stored.
+type Opened<'a> = (Box<dyn Read + 'a>, bool, u64);
+
+/// Wraps `r` in a gzip decoder when its first bytes are the gzip magic `1f 8b`.
+fn detect_gzip<'a, R: BufRead + 'a>(path: &Path, mut r: R, len: u64) -> Result<Opened<'a>, IoError> {
     let head = r.fill_buf().map_err(|e| IoError::os(path, "cannot read", e))?;
     let gz = head.len() >= 2 && head[0] == 0x1f && head[1] == 0x8b;
     Ok(if gz { (Box::new(MultiGzDecoder::new(r)), true, len) } else { (Box::new(r), false, len) })
+}
+
+/// Opens `path`, detecting gzip by its magic bytes `1f 8b`; returns the reader, whether it is
+/// compressed, and the file length in bytes.
+fn open(path: &Path) -> Result<Opened<'static>, IoError> {
+    let file = File::open(path).map_err(|e| IoError::os(path, "cannot open", e))?;
+    let len = file.metadata().map_err(|e| IoError::os(path, "cannot stat", e))?.len();
+    detect_gzip(path, BufReader::with_capacity(1 << 16, file), len)
+}
+
+/// Where the bytes of a NIfTI file come from: a file, or memory (named for error messages).
+#[derive(Clone, Copy)]
+enum Source<'a> {
+    File,
+    Bytes(&'a [u8]),
+}
+
+impl<'a> Source<'a> {
+    fn open(self, path: &Path) -> Result<Opened<'a>, IoError> {
+        match self {
+            Source::File => open(path),
+            Source::Bytes(b) => detect_gzip(path, b, b.len() as u64),
+        }
+    }
 }
 
 /// Reads until `buf` is full or the stream ends; returns the count read.
@@ -94,9 +118,16 @@ pub fn read_header(path: &Path) -> Result<HeaderInfo, IoError> {
     read_header_from(path, &mut r, gz)
 }
 
+/// [`read_header`] of the bytes of a NIfTI-1 file held in memory (plain or gzip); `name` is
+/// only used in error messages.
+pub fn read_header_from_bytes(name: &Path, bytes: &[u8]) -> Result<HeaderInfo, IoError> {
+    let (mut r, gz, _) = Source::Bytes(bytes).open(name)?;
+    read_header_from(name, &mut r, gz)
+}
+
 /// The header and the raw voxel bytes, size-checked before allocation.
-fn read_raw(path: &Path, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<u8>), IoError> {
-    let (mut r, gz, file_len) = open(path)?;
+fn read_raw(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<u8>), IoError> {
+    let (mut r, gz, file_len) = src.open(path)?;
     let info = read_header_from(path, &mut r, gz)?;
     let want = info.data_bytes;
     if want > opts.max_bytes {
@@ -186,7 +217,7 @@ fn single_volume(path: &Path, info: &HeaderInfo) -> Result<(), IoError> {
 /// Every voxel value of a NIfTI-1 file, scaled, in file order (i fastest), with its header;
 /// any dimensionality. For summaries that do not need the 3-D layout.
 pub fn read_values(path: &Path, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<f32>), IoError> {
-    let (info, bytes) = read_raw(path, opts)?;
+    let (info, bytes) = read_raw(path, Source::File, opts)?;
     let v = scaled_f32(&info, &bytes);
     Ok((info, v))
 }
@@ -200,7 +231,17 @@ pub fn read_image(path: &Path) -> Result<Image, IoError> {
 
 /// [`read_image`] with explicit limits.
 pub fn read_image_with(path: &Path, opts: &ReadOptions) -> Result<Image, IoError> {
-    let (info, bytes) = read_raw(path, opts)?;
+    image_from(path, Source::File, opts)
+}
+
+/// [`read_image_with`] of the bytes of a NIfTI-1 file held in memory (plain or gzip); `name`
+/// is only used in error messages.
+pub fn read_image_from_bytes(name: &Path, bytes: &[u8], opts: &ReadOptions) -> Result<Image, IoError> {
+    image_from(name, Source::Bytes(bytes), opts)
+}
+
+fn image_from(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<Image, IoError> {
+    let (info, bytes) = read_raw(path, src, opts)?;
     single_volume(path, &info)?;
     let arr = to_memory_order(scaled_f32(&info, &bytes), info.grid.shape(), 1);
     Volume::new(info.grid, arr.index_axis_move(Axis(0), 0)).map_err(grid_err(path))
@@ -214,7 +255,17 @@ pub fn read_labels(path: &Path) -> Result<LabelMap, IoError> {
 
 /// [`read_labels`] with explicit limits.
 pub fn read_labels_with(path: &Path, opts: &ReadOptions) -> Result<LabelMap, IoError> {
-    let (info, bytes) = read_raw(path, opts)?;
+    labels_from(path, Source::File, opts)
+}
+
+/// [`read_labels_with`] of the bytes of a NIfTI-1 file held in memory (plain or gzip); `name`
+/// is only used in error messages.
+pub fn read_labels_from_bytes(name: &Path, bytes: &[u8], opts: &ReadOptions) -> Result<LabelMap, IoError> {
+    labels_from(name, Source::Bytes(bytes), opts)
+}
+
+fn labels_from(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<LabelMap, IoError> {
+    let (info, bytes) = read_raw(path, src, opts)?;
     single_volume(path, &info)?;
     let scale = info.scaling().unwrap_or((1.0, 0.0));
     let mut problem: Option<String> = None;
@@ -243,7 +294,21 @@ pub fn read_labels_with(path: &Path, opts: &ReadOptions) -> Result<LabelMap, IoE
 /// Units: those recorded by sinew in `intent_name` if present, else `opts.units`, else mm.
 /// Returns the field (in voxels along i, j, k, as in memory) and the units that were used.
 pub fn read_field(path: &Path, opts: FieldReadOptions) -> Result<(Field, FieldUnits), IoError> {
-    let (info, bytes) = read_raw(path, &opts.read)?;
+    field_from(path, Source::File, opts)
+}
+
+/// [`read_field`] of the bytes of a NIfTI-1 file held in memory (plain or gzip); `name` is
+/// only used in error messages.
+pub fn read_field_from_bytes(
+    name: &Path,
+    bytes: &[u8],
+    opts: FieldReadOptions,
+) -> Result<(Field, FieldUnits), IoError> {
+    field_from(name, Source::Bytes(bytes), opts)
+}
+
+fn field_from(path: &Path, src: Source<'_>, opts: FieldReadOptions) -> Result<(Field, FieldUnits), IoError> {
+    let (info, bytes) = read_raw(path, src, &opts.read)?;
     let d = &info.dims;
     let ok = (d.len() == 5 && d[3] == 1 && d[4] == 3) || (d.len() == 4 && d[3] == 3);
     if !ok {
