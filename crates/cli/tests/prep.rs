@@ -242,6 +242,9 @@ fn bad_inputs_are_refused_before_anything_is_written() {
     // The output folder holds an input; an output would overwrite an input.
     assert_refused(&sinew(&["prep", s(&a), "--out", s(&raw)]), "holds this input");
 
+    // The same scan twice.
+    assert_refused(&sinew(&["prep", s(&raw), s(&a), "--out", s(&o)]), "given twice");
+
     // A label map on another grid than its image.
     let o = tmp.path().join("o_lab");
     let wrong = raw.join("scan_b_labels.nii.gz");

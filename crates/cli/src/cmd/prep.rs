@@ -300,6 +300,12 @@ fn collect_jobs(inputs: &[PathBuf], labels: &[PathBuf]) -> Result<Vec<Job>> {
     if images.is_empty() {
         bail!("{}: no image among the inputs (only *_labels files)", inputs[0].display());
     }
+    let mut seen = BTreeSet::new();
+    for f in images.iter().chain(&named_labels) {
+        if !seen.insert(f.canonicalize().unwrap_or_else(|_| f.clone())) {
+            bail!("{}: given twice among the inputs", f.display());
+        }
+    }
     let mut jobs: Vec<Job> = images.into_iter().map(|image| Job { image, labels: None }).collect();
     if !labels.is_empty() {
         if let Some(l) = named_labels.first() {
@@ -466,10 +472,10 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
         let secs = t.elapsed().as_secs_f64();
         let [nx, ny, nz] = after.shape;
         let [sx, sy, sz] = after.spacing_mm;
+        let [bx, by, bz] = before.shape;
         say(format!(
-            "{}  {:?} {} -> {nx}x{ny}x{nz} @ {sx:.3}x{sy:.3}x{sz:.3} mm {}  {secs:.2} s",
+            "{}  {bx}x{by}x{bz} {} -> {nx}x{ny}x{nz} {} @ {sx:.3}x{sy:.3}x{sz:.3} mm  {secs:.2} s",
             stem(&j.image),
-            before.shape,
             before.orientation,
             after.orientation
         ));
