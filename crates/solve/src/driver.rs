@@ -134,7 +134,7 @@ pub fn register(
     let mind = MindParams { radius: params.mind_radius, dilation: params.mind_dilation };
     for (step, level) in (params.finest_level..params.levels).rev().enumerate() {
         let desc_grid = fixed_pyr[level].grid.clone();
-        let stride = if level == params.finest_level { params.finest_stride } else { 1 };
+        let stride = params.strides[step];
         let lattice = desc_grid.strided(stride);
         observer(Progress { level, stage: Stage::Descriptors, iteration: 0, iterations: 0 });
         let t = Instant::now();

@@ -58,10 +58,11 @@ pub struct RegParams {
     /// The finest level that is optimised; 1 means the field is optimised at half
     /// resolution and then upsampled to the input grid (faster; the field is smooth anyway).
     pub finest_level: usize,
-    /// Lattice stride of the field on the finest level: 2 puts one field vector on every
-    /// second voxel along each axis, each compared through full-resolution descriptors, and
-    /// upsamples the field at the end (an eighth of the cost of stride 1).
-    pub finest_stride: usize,
+    /// Lattice stride of the field per optimised level, coarsest first: 2 puts one field
+    /// vector on every second voxel of the level along each axis, each compared through the
+    /// level's full-resolution descriptors (an eighth of the cost of stride 1; the field is
+    /// upsampled at the end).
+    pub strides: Vec<usize>,
     /// Iterations per optimised level, coarsest first.
     pub iterations: Vec<usize>,
     /// Adam step size per optimised level, coarsest first, in voxels of that level.
@@ -112,10 +113,10 @@ impl RegParams {
         let base = RegParams {
             levels: 4,
             finest_level: 0,
-            finest_stride: 2,
+            strides: vec![1, 1, 2, 2],
             iterations: vec![80, 60, 40, 40],
             step_size: vec![0.5, 0.5, 0.3, 0.2],
-            lambda: 0.03,
+            lambda: 0.1,
             optimiser: Optimiser::Adam,
             similarity: Similarity::MindSsc,
             mind_radius: 1,
@@ -133,7 +134,7 @@ impl RegParams {
             "default" => Some(base),
             "fast" => Some(RegParams { iterations: vec![60, 40, 20, 20], ..base }),
             "accurate" => Some(RegParams {
-                finest_stride: 1,
+                strides: vec![1, 1, 1, 1],
                 iterations: vec![100, 80, 60, 30],
                 tolerance: 1e-5,
                 ..base
@@ -156,10 +157,10 @@ impl RegParams {
         if self.finest_level >= self.levels {
             return bad("finest_level", format!("{} must be below levels ({})", self.finest_level, self.levels));
         }
-        if !(1..=4).contains(&self.finest_stride) {
-            return bad("finest_stride", format!("{} is outside 1..=4", self.finest_stride));
-        }
         let n = self.optimised_levels();
+        if self.strides.len() != n || self.strides.iter().any(|s| !(1..=4).contains(s)) {
+            return bad("strides", format!("needs {n} values in 1..=4 (one per optimised level), got {:?}", self.strides));
+        }
         if self.iterations.len() != n {
             return bad("iterations", format!("needs {n} values (one per optimised level), got {}", self.iterations.len()));
         }
