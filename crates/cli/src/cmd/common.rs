@@ -192,3 +192,12 @@ pub fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> anyhow:
         }
     }
 }
+
+/// Peak resident memory of this process in MB, from `VmHWM` in `/proc/self/status` (Linux);
+/// `None` where that file does not exist.
+pub fn peak_rss_mb() -> Option<f64> {
+    let status = std::fs::read_to_string("/proc/self/status").ok()?;
+    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
+    let kb: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kb / 1024.0)
+}

@@ -93,6 +93,9 @@ pub struct RegisterArgs {
     /// Worker threads (default: all cores).
     #[arg(long, short = 'j')]
     pub threads: Option<usize>,
+    /// Do not draw the quality-control sheet `qc.png`.
+    #[arg(long)]
+    pub no_qc: bool,
     /// No progress bar and no summary.
     #[arg(long, short = 'q')]
     pub quiet: bool,
@@ -106,7 +109,8 @@ const REGISTER_EXAMPLES: &str = "Examples:
   sinew register -f a.nii.gz -m b.nii.gz -o out --config params.toml --field-units voxel
 
 Outputs in DIR: field.nii.gz (displacement, pull: warped(x) = moving(x + u(x))),
-warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz, report.json.";
+warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz, qc.png (unless --no-qc),
+report.json (written last: its presence marks a complete folder).";
 
 /// `--optimiser` values.
 #[derive(Clone, Copy, Debug, ValueEnum)]
@@ -151,6 +155,7 @@ impl RegisterArgs {
             let n = p.optimised_levels();
             resize_last(&mut p.iterations, n);
             resize_last(&mut p.step_size, n);
+            resize_last(&mut p.strides, n);
         }
         if let Some(l) = self.lambda {
             p.lambda = l;
@@ -262,6 +267,8 @@ pub struct Timings {
     pub write_s: f64,
     /// Wall time of the whole command.
     pub total_s: f64,
+    /// Peak resident memory of the process in MB (Linux `VmHWM`; absent elsewhere).
+    pub peak_rss_mb: Option<f64>,
 }
 
 /// Runs `sinew register`.
@@ -281,7 +288,7 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         args.mask.as_deref(),
     )?;
     let mut timings = Timings { load_s: t_all.elapsed().as_secs_f64(), ..Timings::default() };
-    let out_paths = OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy);
+    let out_paths = OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, !args.no_qc);
     common::prepare_out_dir(&args.out, &out_paths.all(), &inputs.paths())?;
 
     let t = Instant::now();
@@ -321,8 +328,22 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
 
     let t = Instant::now();
     write_outputs(&out_paths, &reg.field, args.field_units.into(), &warped, warped_labels.as_ref(), &jacdet)?;
+    if out_paths.qc.is_some() {
+        crate::cmd::qc::qc_for_pair(
+            &args.out,
+            &args.fixed,
+            &args.moving,
+            &inputs,
+            &moving_on_fixed,
+            &warped,
+            &reg.field,
+            &jacdet,
+            warped_labels.as_ref(),
+        )?;
+    }
     timings.write_s = t.elapsed().as_secs_f64();
     timings.total_s = t_all.elapsed().as_secs_f64();
+    timings.peak_rss_mb = common::peak_rss_mb();
     let report = Report {
         caution: common::CAUTION,
         sinew_version: env!("CARGO_PKG_VERSION"),
@@ -386,17 +407,19 @@ struct OutPaths {
     warped: PathBuf,
     warped_labels: Option<PathBuf>,
     jacdet: PathBuf,
+    qc: Option<PathBuf>,
     report: PathBuf,
 }
 
 impl OutPaths {
-    fn new(dir: &Path, labels: bool, npy: bool) -> OutPaths {
+    fn new(dir: &Path, labels: bool, npy: bool, qc: bool) -> OutPaths {
         OutPaths {
             field: dir.join("field.nii.gz"),
             npy: npy.then(|| dir.join("field.npy")),
             warped: dir.join("warped.nii.gz"),
             warped_labels: labels.then(|| dir.join("warped_labels.nii.gz")),
             jacdet: dir.join("jacdet.nii.gz"),
+            qc: qc.then(|| dir.join("qc.png")),
             report: dir.join("report.json"),
         }
     }
@@ -407,6 +430,7 @@ impl OutPaths {
         v.push(self.warped.clone());
         v.extend(self.warped_labels.clone());
         v.push(self.jacdet.clone());
+        v.extend(self.qc.clone());
         v.push(self.report.clone());
         v
     }
