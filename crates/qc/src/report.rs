@@ -8,9 +8,9 @@
 //! QC sheets (`qc.png`) are looked up below the cohort folder in a folder whose name contains
 //! both subject ids of the pair.
 //!
-//! Box plots show the median, the quartiles and the whiskers as drawn by the `plotters`
-//! crate's `Quartiles` (whiskers at the farthest values within 1.5 interquartile ranges,
-//! Tukey's rule, common practice).
+//! Box plots show the median, the quartiles and the whiskers of [`BoxStats`] (whiskers at the
+//! farthest values within 1.5 interquartile ranges, Tukey's rule, common practice), with the
+//! values beyond drawn as circles.
 
 use std::collections::BTreeMap;
 use std::fmt::Write as _;
@@ -302,6 +302,54 @@ fn metric_range(c: &Cohort, metric: Metric) -> Range<f64> {
     }
 }
 
+/// Box statistics of a sample: quartiles by linear interpolation between order statistics
+/// (`numpy.percentile`'s default "linear" method), whiskers at the farthest values within
+/// 1.5 interquartile ranges of the box (Tukey's rule, common practice), and the values beyond.
+#[derive(Clone, Debug, PartialEq)]
+pub struct BoxStats {
+    /// Lower whisker end (a data value).
+    pub low: f64,
+    /// First quartile.
+    pub q1: f64,
+    /// Median.
+    pub median: f64,
+    /// Third quartile.
+    pub q3: f64,
+    /// Upper whisker end (a data value).
+    pub high: f64,
+    /// Values outside the whiskers.
+    pub outliers: Vec<f64>,
+}
+
+impl BoxStats {
+    /// Statistics of `v` (non-empty).
+    ///
+    /// # Panics
+    /// When `v` is empty.
+    #[track_caller]
+    pub fn new(v: &[f64]) -> BoxStats {
+        assert!(!v.is_empty(), "box statistics of an empty sample");
+        let mut s = v.to_vec();
+        s.sort_by(f64::total_cmp);
+        let q = |p: f64| {
+            let h = (s.len() - 1) as f64 * p;
+            let (lo, hi) = (h.floor() as usize, h.ceil() as usize);
+            s[lo] + (h - lo as f64) * (s[hi] - s[lo])
+        };
+        let (q1, median, q3) = (q(0.25), q(0.5), q(0.75));
+        let (f_lo, f_hi) = (q1 - 1.5 * (q3 - q1), q3 + 1.5 * (q3 - q1));
+        let inside: Vec<f64> = s.iter().copied().filter(|x| *x >= f_lo && *x <= f_hi).collect();
+        BoxStats {
+            low: inside.first().copied().unwrap_or(q1),
+            high: inside.last().copied().unwrap_or(q3),
+            outliers: s.iter().copied().filter(|x| *x < f_lo || *x > f_hi).collect(),
+            q1,
+            median,
+            q3,
+        }
+    }
+}
+
 /// One box chart: one box per method for `label`.
 fn box_chart<DB: DrawingBackend>(
     area: &DrawingArea<DB, Shift>,
@@ -319,16 +367,21 @@ fn box_chart<DB: DrawingBackend>(
         .margin(8)
         .x_label_area_size(26)
         .y_label_area_size(44)
-        .build_cartesian_2d((0..n).into_segmented(), range.start as f32..range.end as f32)
+        .build_cartesian_2d(-0.5..n as f64 - 0.5, range)
         .map_err(&err)?;
     let methods = c.methods.clone();
     chart
         .configure_mesh()
         .disable_x_mesh()
+        .x_labels(n + 1)
         .y_desc(metric.axis())
-        .x_label_formatter(&move |v| match v {
-            SegmentValue::CenterOf(i) => methods.get(*i).cloned().unwrap_or_default(),
-            _ => String::new(),
+        .x_label_formatter(&move |v: &f64| {
+            let i = v.round();
+            if (v - i).abs() < 1e-6 && i >= 0.0 {
+                methods.get(i as usize).cloned().unwrap_or_default()
+            } else {
+                String::new()
+            }
         })
         .label_style(("sans-serif", 11))
         .axis_desc_style(("sans-serif", 12))
@@ -339,13 +392,29 @@ fn box_chart<DB: DrawingBackend>(
         if v.is_empty() {
             continue;
         }
-        let q = Quartiles::new(&v);
+        let b = BoxStats::new(&v);
         let colour = method_colour(i);
+        let x = i as f64;
+        let (hw, cap) = (0.22, 0.1);
+        let stroke = colour.stroke_width(1);
+        let lines = [
+            vec![(x, b.low), (x, b.q1)],
+            vec![(x, b.q3), (x, b.high)],
+            vec![(x - cap, b.low), (x + cap, b.low)],
+            vec![(x - cap, b.high), (x + cap, b.high)],
+        ];
         chart
-            .draw_series(std::iter::once(
-                Boxplot::new_vertical(SegmentValue::CenterOf(i), &q).width(22).whisker_width(0.6).style(colour),
-            ))
+            .draw_series(std::iter::once(Rectangle::new([(x - hw, b.q1), (x + hw, b.q3)], colour.mix(0.25).filled())))
             .map_err(&err)?;
+        chart.draw_series(std::iter::once(Rectangle::new([(x - hw, b.q1), (x + hw, b.q3)], stroke))).map_err(&err)?;
+        chart.draw_series(lines.into_iter().map(|l| PathElement::new(l, stroke))).map_err(&err)?;
+        chart
+            .draw_series(std::iter::once(PathElement::new(
+                vec![(x - hw, b.median), (x + hw, b.median)],
+                colour.stroke_width(2),
+            )))
+            .map_err(&err)?;
+        chart.draw_series(b.outliers.iter().map(|&y| Circle::new((x, y), 3, stroke))).map_err(&err)?;
     }
     area.present().map_err(&err)?;
     Ok(())
@@ -380,6 +449,24 @@ fn jacobian_chart<DB: DrawingBackend>(area: &DrawingArea<DB, Shift>, c: &Cohort,
     chart.draw_series(pts.iter().map(|&p| Circle::new(p, 3, colour.filled()))).map_err(&err)?;
     area.present().map_err(&err)?;
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn box_statistics_match_numpy_percentiles() {
+        // numpy.percentile([1, 2, 3, 4, 100], [25, 50, 75]) = [2, 3, 4] (linear method, from
+        // memory); fences 2 − 3 = −1 and 4 + 3 = 7, so 100 is an outlier and the upper
+        // whisker ends at 4.
+        let b = BoxStats::new(&[4.0, 100.0, 1.0, 3.0, 2.0]);
+        assert_eq!((b.low, b.q1, b.median, b.q3, b.high), (1.0, 2.0, 3.0, 4.0, 4.0));
+        assert_eq!(b.outliers, vec![100.0]);
+        // Even count: percentile([1, 2, 3, 4], 50) = 2.5, 25th = 1.75.
+        let b = BoxStats::new(&[1.0, 2.0, 3.0, 4.0]);
+        assert_eq!((b.q1, b.median, b.q3), (1.75, 2.5, 3.25));
+    }
 }
 
 const CHART_W: u32 = 300;
