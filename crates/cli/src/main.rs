@@ -32,6 +32,10 @@ enum Command {
     Warp(cmd::warp::WarpArgs),
     /// Bring scans and label maps onto a common grid: orient, resample, crop/pad, window, scale.
     Prep(cmd::prep::PrepArgs),
+    /// Score a registered pair: Dice, HD95, Jacobian statistics, landmark error.
+    Score(cmd::score::ScoreArgs),
+    /// Register and score every pair of a cohort (resumable, shardable), and compare methods.
+    Cohort(cmd::cohort::CohortArgs),
     /// Draw the quality-control sheet (PNG) of a fixed/moving/field triple.
     Qc(cmd::qc::QcArgs),
     /// Turn a cohort's tables into one self-contained HTML report with plots.
@@ -46,6 +50,8 @@ fn main() -> ExitCode {
         Command::Register(a) => cmd::register::run(a),
         Command::Warp(a) => cmd::warp::run(a),
         Command::Prep(a) => cmd::prep::run(a),
+        Command::Score(a) => cmd::score::run(a),
+        Command::Cohort(a) => cmd::cohort::run(a),
         Command::Qc(a) => cmd::qc::run(a),
         Command::Report(a) => cmd::report::run(a),
     };

@@ -1,4 +1,5 @@
 //! One module per subcommand.
+pub mod cohort;
 pub mod common;
 pub mod demo;
 pub mod info;
@@ -6,4 +7,5 @@ pub mod prep;
 pub mod qc;
 pub mod register;
 pub mod report;
+pub mod score;
 pub mod warp;

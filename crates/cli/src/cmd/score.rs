@@ -1,0 +1,390 @@
+//! `sinew score`: Dice, HD95, Jacobian statistics and landmark error of one registered pair,
+//! from a displacement field (sinew's or another method's) or from already-warped labels.
+//!
+//! Definitions of every figure: see the `sinew_score` crate documentation.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use anyhow::{bail, Context};
+use clap::{Args, ValueEnum};
+use serde::{Deserialize, Serialize};
+use sinew_grid::{resample, Field, Grid, LabelMap, WorldPoint};
+use sinew_io::{FieldReadOptions, FieldUnits, NpyLayout};
+use sinew_score::{InversionReport, LandmarkErrors, PairScore, Warp};
+
+use crate::cmd::common;
+use crate::cmd::register::UnitsArg;
+
+/// Fixed-point iterations used to invert a push field.
+pub const INVERT_ITERATIONS: usize = 20;
+
+/// Arguments of `sinew score`.
+#[derive(Args, Debug, Clone)]
+#[command(after_long_help = SCORE_HELP)]
+pub struct ScoreArgs {
+    /// Label map of the fixed scan (NIfTI): the grid everything is scored on.
+    #[arg(long, value_name = "NII")]
+    pub fixed_labels: PathBuf,
+    /// Label map of the moving scan (NIfTI, any grid).
+    #[arg(long, value_name = "NII")]
+    pub moving_labels: PathBuf,
+    /// Displacement field (NIfTI or .npy) on the fixed grid; the moving labels are warped
+    /// through it by nearest neighbour.
+    #[arg(long, value_name = "FILE", required_unless_present = "warped_labels", conflicts_with = "warped_labels")]
+    pub field: Option<PathBuf>,
+    /// Moving labels already warped onto the fixed grid (no Jacobian, no landmarks then).
+    #[arg(long, value_name = "NII")]
+    pub warped_labels: Option<PathBuf>,
+    /// Fixed landmarks: CSV of x,y,z in world mm (one point a line; a header line and a
+    /// leading name column are allowed).
+    #[arg(long, value_name = "CSV", requires = "moving_landmarks", requires = "field")]
+    pub fixed_landmarks: Option<PathBuf>,
+    /// Moving landmarks, same format and order as the fixed ones.
+    #[arg(long, value_name = "CSV", requires = "fixed_landmarks")]
+    pub moving_landmarks: Option<PathBuf>,
+    #[command(flatten)]
+    pub field_format: FieldFormat,
+    /// Write CSV (one row per label) instead of JSON.
+    #[arg(long)]
+    pub csv: bool,
+    /// Output file (written atomically); default: standard output.
+    #[arg(long, short = 'o', value_name = "FILE")]
+    pub out: Option<PathBuf>,
+    /// Worker threads (default: all cores).
+    #[arg(long, short = 'j')]
+    pub threads: Option<usize>,
+}
+
+const SCORE_HELP: &str = "Examples:
+  sinew score --fixed-labels f_labels.nii.gz --moving-labels m_labels.nii.gz --field out/field.nii.gz
+  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field net.npy --layout channel-first
+  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field fwd.nii.gz --direction push --csv
+
+Fields: sinew's convention is a pull field on the fixed grid, warped(x) = moving(x + u(x)).
+NIfTI fields are read in the units their header records (sinew writes it), else --units
+(default mm along the world axes). .npy fields have no grid: they must have the fixed label
+map's shape and are read in --units (default voxel, along the array axes i, j, k).
+A push field (moving → fixed) is inverted first by fixed-point iteration v(x) = -u(x + v(x))
+(20 iterations); the report gives the residual |v(x) + u(x + v(x))| in mm.
+
+Figures: Dice per label; HD95 = 95th percentile (numpy's linear rule) of the pooled symmetric
+distances in mm between the 6-connected label surfaces (exact Euclidean distance transform);
+folding = share of voxels with det J <= 0; SDlogJ = population standard deviation of ln det J
+over voxels with det J > 0 (the others excluded and counted); landmark error = |x + u(x) - y| in mm.";
+
+/// How to read another tool's field.
+#[derive(Args, Debug, Clone, Default)]
+pub struct FieldFormat {
+    /// Units of the field's vectors: mm along the world axes, or voxels along i, j, k.
+    /// Default: what a NIfTI header records, else mm; voxel for .npy.
+    #[arg(long, value_enum)]
+    pub units: Option<UnitsArg>,
+    /// Axis order of a .npy field: channel-last (nx, ny, nz, 3) or channel-first (3, nx, ny, nz).
+    #[arg(long, value_enum, default_value_t = LayoutArg::ChannelLast)]
+    pub layout: LayoutArg,
+    /// Direction of the field: pull (fixed → moving, sinew's) or push (moving → fixed,
+    /// inverted first).
+    #[arg(long, value_enum, default_value_t = DirectionArg::Pull)]
+    pub direction: DirectionArg,
+}
+
+/// `--layout` values.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, ValueEnum, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum LayoutArg {
+    /// (nx, ny, nz, 3).
+    #[default]
+    ChannelLast,
+    /// (3, nx, ny, nz).
+    ChannelFirst,
+}
+
+/// `--direction` values.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, ValueEnum, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum DirectionArg {
+    /// warped(x) = moving(x + u(x)), u on the fixed grid.
+    #[default]
+    Pull,
+    /// u maps moving points forward: y ↦ y + u(y); inverted into a pull field first.
+    Push,
+}
+
+/// How a field file was read, for reports.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct FieldNote {
+    /// The file.
+    pub path: String,
+    /// SHA-256 of its bytes.
+    pub sha256: String,
+    /// "nifti" or "npy".
+    pub format: String,
+    /// The units the vectors were read in ("mm" or "voxel").
+    pub units: String,
+    /// The `.npy` axis order (for .npy only).
+    pub layout: Option<LayoutArg>,
+    /// The direction given.
+    pub direction: DirectionArg,
+    /// With a push field: the fixed-point inversion and its residual.
+    pub inverted: Option<InversionReport>,
+    /// True when the field's grid differed from the fixed grid and it was resampled onto it.
+    pub resampled_to_fixed_grid: bool,
+}
+
+/// Reads a field file (NIfTI or `.npy`) as a pull field on `fixed_grid`, inverting a push
+/// field first and resampling a NIfTI field given on another grid.
+pub fn load_field(path: &Path, fixed_grid: &Grid, fmt: &FieldFormat) -> anyhow::Result<(Field, FieldNote)> {
+    let is_npy = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("npy"));
+    let (field, units) = if is_npy {
+        let layout = match fmt.layout {
+            LayoutArg::ChannelLast => NpyLayout::ChannelLast,
+            LayoutArg::ChannelFirst => NpyLayout::ChannelFirst,
+        };
+        let raw = sinew_io::read_npy_field(path, fixed_grid, layout)
+            .with_context(|| "a .npy field must have the fixed label map's shape")?;
+        match fmt.units.unwrap_or(UnitsArg::Voxel) {
+            UnitsArg::Voxel => (raw, FieldUnits::Voxel),
+            UnitsArg::Mm => {
+                let f = Field::from_world_mm(fixed_grid.clone(), &raw.to_voxel_channel_last())
+                    .with_context(|| format!("{}", path.display()))?;
+                (f, FieldUnits::Mm)
+            }
+        }
+    } else {
+        let opts = FieldReadOptions { units: fmt.units.map(FieldUnits::from), ..Default::default() };
+        sinew_io::read_field(path, opts)?
+    };
+    if !field.is_finite() {
+        bail!("{}: the field holds NaN or infinite vectors", path.display());
+    }
+    let (field, inverted) = match fmt.direction {
+        DirectionArg::Pull => (field, None),
+        DirectionArg::Push => {
+            let inv = sinew_score::invert_push_field(&field, INVERT_ITERATIONS);
+            (inv.field, Some(inv.report))
+        }
+    };
+    let resampled = !field.grid.same_as(fixed_grid, 1e-3);
+    let field = if resampled { resample::resample_field(&field, fixed_grid) } else { field };
+    let note = FieldNote {
+        path: path.display().to_string(),
+        sha256: common::sha256_file(path)?,
+        format: if is_npy { "npy" } else { "nifti" }.into(),
+        units: units.as_str().into(),
+        layout: is_npy.then_some(fmt.layout),
+        direction: fmt.direction,
+        inverted,
+        resampled_to_fixed_grid: resampled,
+    };
+    Ok((field, note))
+}
+
+/// Reads landmarks: one point a line, the last three comma-separated values are x, y, z in
+/// world mm; blank lines and lines starting with `#` are skipped; a first line that does not
+/// parse is taken as a header.
+pub fn read_landmarks(path: &Path) -> anyhow::Result<Vec<WorldPoint>> {
+    let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
+    let mut points = Vec::new();
+    let mut first = true;
+    for (n, line) in text.lines().enumerate() {
+        let line = line.trim();
+        if line.is_empty() || line.starts_with('#') {
+            continue;
+        }
+        let cells: Vec<&str> = line.split(',').map(str::trim).collect();
+        let parsed: Option<Vec<f64>> = (cells.len() >= 3)
+            .then(|| cells[cells.len() - 3..].iter().map(|c| c.parse::<f64>().ok().filter(|v| v.is_finite())).collect())
+            .flatten();
+        match parsed {
+            Some(v) => points.push([v[0], v[1], v[2]]),
+            None if first => {}
+            None => bail!("{}:{}: expected x,y,z in mm, found {line:?}", path.display(), n + 1),
+        }
+        first = false;
+    }
+    if points.is_empty() {
+        bail!("{}: no landmarks (expected lines of x,y,z in mm)", path.display());
+    }
+    Ok(points)
+}
+
+/// Label value → name from `labels.json` in `dir` (`{"1": "liver", ...}`), empty when absent.
+pub fn label_names(dir: &Path) -> anyhow::Result<BTreeMap<u16, String>> {
+    let path = dir.join("labels.json");
+    if !path.exists() {
+        return Ok(BTreeMap::new());
+    }
+    let text = std::fs::read_to_string(&path).with_context(|| format!("{}: cannot read", path.display()))?;
+    let raw: BTreeMap<String, String> = serde_json::from_str(&text)
+        .with_context(|| format!("{}: expected {{\"1\": \"name\", ...}}", path.display()))?;
+    raw.into_iter()
+        .map(|(k, v)| {
+            Ok((k.parse::<u16>().with_context(|| format!("{}: label {k:?} is not 0..65535", path.display()))?, v))
+        })
+        .collect()
+}
+
+/// The scores of one pair with how they were obtained.
+#[derive(Clone, Debug, Serialize, Deserialize)]
+pub struct PairResult {
+    /// Dice, surface distances and Jacobian statistics.
+    pub score: PairScore,
+    /// Landmark errors (with landmarks and a field).
+    pub landmarks: Option<LandmarkErrors>,
+    /// How the field was read (with a field).
+    pub field: Option<FieldNote>,
+}
+
+/// What to score: the files of one pair.
+pub struct PairFiles<'a> {
+    /// Fixed labels.
+    pub fixed_labels: &'a Path,
+    /// Moving labels.
+    pub moving_labels: &'a Path,
+    /// A field, or else warped labels.
+    pub field: Option<&'a Path>,
+    /// Warped labels (when there is no field).
+    pub warped_labels: Option<&'a Path>,
+    /// Fixed and moving landmarks.
+    pub landmarks: Option<(&'a Path, &'a Path)>,
+}
+
+/// Scores one pair (shared by `sinew score` and `sinew cohort`).
+pub fn score_files(files: &PairFiles<'_>, fmt: &FieldFormat) -> anyhow::Result<PairResult> {
+    let fixed = sinew_io::read_labels(files.fixed_labels)?;
+    let moving = sinew_io::read_labels(files.moving_labels)?;
+    let (score, landmarks, note) = if let Some(fp) = files.field {
+        let (field, note) = load_field(fp, &fixed.grid, fmt)?;
+        let score = sinew_score::score_pair(&fixed, &moving, Warp::Field(&field))
+            .with_context(|| format!("scoring {}", fp.display()))?;
+        let landmarks = match files.landmarks {
+            Some((f, m)) => Some(
+                sinew_score::landmark_errors(&field, &read_landmarks(f)?, &read_landmarks(m)?)
+                    .with_context(|| format!("landmarks {} and {}", f.display(), m.display()))?,
+            ),
+            None => None,
+        };
+        (score, landmarks, Some(note))
+    } else {
+        let wp = files.warped_labels.expect("clap requires --field or --warped-labels");
+        let warped: LabelMap = sinew_io::read_labels(wp)?;
+        let score = sinew_score::score_pair(&fixed, &moving, Warp::Warped(&warped))
+            .with_context(|| format!("{}: must lie on the fixed labels' grid", wp.display()))?;
+        (score, None, None)
+    };
+    Ok(PairResult { score, landmarks, field: note })
+}
+
+/// The JSON report of `sinew score`.
+#[derive(Serialize)]
+struct ScoreReport<'a> {
+    caution: &'static str,
+    sinew_version: &'static str,
+    inputs: Vec<common::InputRecord>,
+    label_names: &'a BTreeMap<u16, String>,
+    #[serde(flatten)]
+    result: &'a PairResult,
+}
+
+/// Runs `sinew score`.
+pub fn run(args: ScoreArgs) -> anyhow::Result<()> {
+    common::with_threads(args.threads, || {
+        let mut inputs = vec![("fixed_labels", &args.fixed_labels), ("moving_labels", &args.moving_labels)];
+        for (role, p) in [
+            ("field", &args.field),
+            ("warped_labels", &args.warped_labels),
+            ("fixed_landmarks", &args.fixed_landmarks),
+            ("moving_landmarks", &args.moving_landmarks),
+        ] {
+            if let Some(p) = p {
+                inputs.push((role, p));
+            }
+        }
+        if let Some(out) = &args.out {
+            sinew_io::atomic::ensure_not_input(out, &inputs.iter().map(|(_, p)| p.as_path()).collect::<Vec<_>>())?;
+        }
+        let files = PairFiles {
+            fixed_labels: &args.fixed_labels,
+            moving_labels: &args.moving_labels,
+            field: args.field.as_deref(),
+            warped_labels: args.warped_labels.as_deref(),
+            landmarks: args.fixed_landmarks.as_deref().zip(args.moving_landmarks.as_deref()),
+        };
+        let result = score_files(&files, &args.field_format)?;
+        let names = label_names(args.fixed_labels.parent().unwrap_or(Path::new(".")))?;
+        let bytes = if args.csv {
+            csv_rows(&result, &names).into_bytes()
+        } else {
+            let records = inputs
+                .iter()
+                .map(|(role, p)| {
+                    Ok(common::InputRecord { role, path: p.display().to_string(), sha256: common::sha256_file(p)? })
+                })
+                .collect::<anyhow::Result<Vec<_>>>()?;
+            let report = ScoreReport {
+                caution: common::CAUTION,
+                sinew_version: env!("CARGO_PKG_VERSION"),
+                inputs: records,
+                label_names: &names,
+                result: &result,
+            };
+            let mut b = serde_json::to_vec_pretty(&report).context("serialising the report")?;
+            b.push(b'\n');
+            b
+        };
+        match &args.out {
+            Some(out) => sinew_io::atomic::write_bytes_atomic(out, &bytes)?,
+            None => {
+                use std::io::Write;
+                std::io::stdout().write_all(&bytes).context("writing to standard output")?;
+            }
+        }
+        Ok(())
+    })
+}
+
+/// Formats an optional number for CSV: empty when undefined, else Rust's shortest exact form.
+pub fn cell(v: Option<f64>) -> String {
+    v.map(|x| x.to_string()).unwrap_or_default()
+}
+
+/// The header of `sinew score --csv`.
+pub const SCORE_CSV_HEADER: &str =
+    "label,name,dice_before,dice,hd95_mm,hd_mm,assd_mm,folding,sdlogj,jac_min,jac_max,landmark_mean_mm";
+
+/// One CSV row per label; the pair-level figures (Jacobian, landmarks) repeat on each row.
+fn csv_rows(r: &PairResult, names: &BTreeMap<u16, String>) -> String {
+    let j = r.score.jacobian.as_ref();
+    let mut s = String::from(SCORE_CSV_HEADER);
+    s.push('\n');
+    for l in &r.score.labels {
+        let surf = l.surface.as_ref();
+        let cells = [
+            l.label.to_string(),
+            csv_text(names.get(&l.label).map(String::as_str).unwrap_or("")),
+            cell(l.dice_before),
+            cell(l.dice),
+            cell(surf.map(|x| x.hd95_mm)),
+            cell(surf.map(|x| x.hd_mm)),
+            cell(surf.map(|x| x.assd_mm)),
+            cell(j.map(|j| j.folding_fraction)),
+            cell(j.and_then(|j| j.sd_log_j)),
+            cell(j.and_then(|j| j.min)),
+            cell(j.and_then(|j| j.max)),
+            cell(r.landmarks.as_ref().map(|l| l.mean_mm)),
+        ];
+        s.push_str(&cells.join(","));
+        s.push('\n');
+    }
+    s
+}
+
+/// A text cell: quoted when it holds a comma, quote or newline (RFC 4180).
+pub fn csv_text(t: &str) -> String {
+    if t.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", t.replace('"', "\"\""))
+    } else {
+        t.to_string()
+    }
+}
