@@ -227,8 +227,11 @@ pub fn prepare(mut image: Image, mut labels: Option<LabelMap>, steps: &Steps) ->
             Resample::Spacing(s) => (grid_with_spacing(&image.grid, s)?, "spacing"),
             Resample::Shape(n) => (grid_with_shape(&image.grid, n)?, "shape"),
         };
-        image = resample::resample_image(&image, &grid, Border::Nearest);
-        labels = labels.map(|l| resample::resample_labels(&l, &grid));
+        // A target equal to the current grid (to 1e-9 mm) leaves the values as they are.
+        if !grid.same_as(&image.grid, 1e-9) {
+            image = resample::resample_image(&image, &grid, Border::Nearest);
+            labels = labels.map(|l| resample::resample_labels(&l, &grid));
+        }
         log.push(StepRecord::Resample { target, grid: (&grid).into() });
     }
     let mut mask = None;

@@ -160,6 +160,15 @@ struct FileLog {
     after: GridRecord,
     steps: Vec<StepRecord>,
     seconds: f64,
+    /// Wall-clock seconds spent reading, preparing and writing this file.
+    timings: Timings,
+}
+
+#[derive(Serialize)]
+struct Timings {
+    read: f64,
+    prepare: f64,
+    write: f64,
 }
 
 #[derive(Serialize)]
@@ -454,8 +463,10 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
         pb.set_message(stem(&j.image));
         let t = Instant::now();
         let (img, lab) = load(j)?;
+        let t_read = t.elapsed().as_secs_f64();
         let before = GridRecord::from(&img.grid);
         let p = prepare(img, lab, &steps).with_context(|| j.image.display().to_string())?;
+        let t_prep = t.elapsed().as_secs_f64();
         let (out_img, out_lab, out_mask) = outputs_of(j, &args.out, steps.mask);
         let staged = |o: &Path| staging.0.join(o.file_name().expect("output has a name"));
         sinew_io::write_image(&staged(&out_img), &p.image)?;
@@ -493,6 +504,7 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
             after,
             steps: p.steps,
             seconds: secs,
+            timings: Timings { read: t_read, prepare: t_prep - t_read, write: secs - t_prep },
         });
         pb.inc(1);
     }
