@@ -126,8 +126,8 @@ mod tests {
         let mut u = Field::zeros(g.clone());
         for (i, j, k) in ndarray::indices((shape[0], shape[1], shape[2])) {
             let y = [i as f64 - c[0], j as f64 - c[1], k as f64 - c[2]];
-            for d in 0..3 {
-                u.data[[d, i, j, k]] = (a[d][0] * y[0] + a[d][1] * y[1] + a[d][2] * y[2]) as f32;
+            for (d, row) in a.iter().enumerate() {
+                u.data[[d, i, j, k]] = (row[0] * y[0] + row[1] * y[1] + row[2] * y[2]) as f32;
             }
         }
         let m =

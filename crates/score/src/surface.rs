@@ -71,9 +71,9 @@ fn bounding_boxes(a: &LabelMap, b: &LabelMap) -> Vec<Option<([usize; 3], [usize;
         for (n, &l) in map.as_slice().iter().enumerate() {
             let p = [n / (ny * nz), (n / nz) % ny, n % nz];
             let e = boxes[l as usize].get_or_insert((p, p));
-            for d in 0..3 {
-                e.0[d] = e.0[d].min(p[d]);
-                e.1[d] = e.1[d].max(p[d]);
+            for (d, &x) in p.iter().enumerate() {
+                e.0[d] = e.0[d].min(x);
+                e.1[d] = e.1[d].max(x);
             }
         }
     }
