@@ -44,7 +44,24 @@ enum Command {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    let result = match cli.command {
+    match dispatch(cli) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            // One line: the context chain joined by ": ".
+            eprintln!("sinew: error: {e:#}");
+            ExitCode::from(2)
+        }
+    }
+}
+
+/// Runs a command line given as words (the first is the program name): lets one command
+/// run others (the demo runs `cohort` and `report`) exactly as a user would.
+pub(crate) fn run_args(words: &[&str]) -> anyhow::Result<()> {
+    dispatch(Cli::try_parse_from(words)?)
+}
+
+fn dispatch(cli: Cli) -> anyhow::Result<()> {
+    match cli.command {
         Command::Info(a) => cmd::info::run(a),
         Command::Demo(a) => cmd::demo::run(a),
         Command::Register(a) => cmd::register::run(a),
@@ -54,14 +71,6 @@ fn main() -> ExitCode {
         Command::Cohort(a) => cmd::cohort::run(a),
         Command::Qc(a) => cmd::qc::run(a),
         Command::Report(a) => cmd::report::run(a),
-    };
-    match result {
-        Ok(()) => ExitCode::SUCCESS,
-        Err(e) => {
-            // One line: the context chain joined by ": ".
-            eprintln!("sinew: error: {e:#}");
-            ExitCode::from(2)
-        }
     }
 }
 

@@ -38,6 +38,14 @@ pub struct DemoArgs {
     #[arg(long)]
     pub small: bool,
 
+    /// Only write the cohort; do not register, score or report.
+    #[arg(long)]
+    pub data_only: bool,
+
+    /// Registration preset for the pairs (fast, default, accurate).
+    #[arg(long, default_value = "default", value_parser = clap::builder::PossibleValuesParser::new(sinew_solve::PRESETS))]
+    pub preset: String,
+
     /// No progress bar and no per-subject lines.
     #[arg(long, short)]
     pub quiet: bool,
@@ -76,9 +84,37 @@ impl CohortInfo {
     }
 }
 
-/// Runs `sinew demo`.
+/// Runs `sinew demo`: writes the cohort, then (unless `--data-only`) registers and scores
+/// every pair with `sinew cohort` into `DIR/results/` and turns the tables into
+/// `DIR/results/report.html` with `sinew report`.
 pub fn run(args: DemoArgs) -> Result<()> {
+    let t = Instant::now();
     write_cohort(&args)?;
+    if args.data_only {
+        return Ok(());
+    }
+    let results = args.out.join("results");
+    let dir = args.out.display().to_string();
+    let res = results.display().to_string();
+    let report = results.join("report.html").display().to_string();
+    let mut cohort = vec!["sinew", "cohort", "--all-pairs", &dir, "--out", &res, "--preset", &args.preset];
+    if args.quiet {
+        cohort.push("--quiet");
+    }
+    crate::run_args(&cohort)?;
+    crate::run_args(&["sinew", "report", "--cohort", &res, "--out", &report])?;
+    if !args.quiet {
+        // The per-label summary table, as written to summary.md.
+        if let Ok(md) = std::fs::read_to_string(results.join("summary.md")) {
+            println!();
+            md.lines().skip_while(|l| !l.starts_with('|')).take_while(|l| l.starts_with('|')).for_each(|l| println!("{l}"));
+            println!();
+        }
+        println!(
+            "demo finished in {:.0} s: tables in {res}/ (scores.csv, summary.md), QC sheets in {res}/pairs/*/qc.png, report {report}",
+            t.elapsed().as_secs_f64()
+        );
+    }
     Ok(())
 }
 
