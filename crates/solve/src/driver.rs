@@ -10,7 +10,7 @@ use sinew_transform::{jacobian_determinant, jacobian_stats, JacobianStats};
 use crate::kernel::{Energy, Problem};
 use crate::param::{GaussianDense, Parametrisation};
 use crate::bspline::BsplineModel;
-use crate::{adam::Adam, lbfgs, svf, Model, Optimiser, RegParams, Similarity, SolveError};
+use crate::{adam::Adam, affine, lbfgs, svf, AffineMode, Model, Optimiser, RegParams, Similarity, SolveError};
 
 /// A stage of the registration, reported to the observer.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
@@ -97,6 +97,10 @@ pub struct Registration {
     pub pyramid_s: f64,
     /// Seconds spent upsampling the final field to the input grid.
     pub upsample_s: f64,
+    /// The linear stage's map (fixed world mm → moving world mm), already part of `field`.
+    pub affine: Option<affine::AffineEstimate>,
+    /// Seconds spent on the linear stage.
+    pub affine_s: f64,
 }
 
 /// Registers `moving` to `fixed`; both must be on the same grid (bring the moving scan onto
@@ -120,6 +124,19 @@ pub fn register(
     if let Some(m) = mask {
         fixed.grid.ensure_same(&m.grid)?;
     }
+    // Linear stage (see [`crate::affine`]): the moving scan is resampled through A, the
+    // deformable stage registers what is left, and the final field is composed with A exactly.
+    let t0 = Instant::now();
+    let affine = match params.affine {
+        AffineMode::None => None,
+        mode => Some(affine::estimate(fixed, moving, mask, &affine::AffineParams::new(mode))?),
+    };
+    let aligned = affine.as_ref().map(|a| {
+        let pad = moving.finite_range().map_or(0.0, |r| r.0);
+        affine::apply_to_image(moving, &a.affine(), &fixed.grid, pad)
+    });
+    let moving = aligned.as_ref().unwrap_or(moving);
+    let affine_s = t0.elapsed().as_secs_f64();
     let t0 = Instant::now();
     observer(Progress { level: params.levels - 1, stage: Stage::Pyramid, iteration: 0, iterations: 0 });
     let (fixed_n, moving_n) = prepare_intensities(fixed, moving, params.similarity);
@@ -194,9 +211,12 @@ pub fn register(
     if !variable.grid.same_as(&fixed.grid, 1e-6) {
         variable = resample::resample_field(&variable, &fixed.grid);
     }
-    let field = displacement_of(&variable, params.diffeomorphic);
+    let mut field = displacement_of(&variable, params.diffeomorphic);
+    if let Some(a) = &affine {
+        affine::compose_after(&mut field, &a.affine());
+    }
     let upsample_s = t.elapsed().as_secs_f64();
-    Ok(Registration { field, levels: reports, pyramid_s, upsample_s })
+    Ok(Registration { field, levels: reports, pyramid_s, upsample_s, affine, affine_s })
 }
 
 /// What one level runs.

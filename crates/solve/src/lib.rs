@@ -6,6 +6,7 @@
 #![deny(missing_docs)]
 
 pub mod adam;
+pub mod affine;
 pub mod bspline;
 mod driver;
 mod error;

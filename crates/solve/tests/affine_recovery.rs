@@ -1,0 +1,112 @@
+//! Recovery of a known linear map by the affine stage: a demo subject (the fixed scan) and
+//! the same subject moved by a known rotation, scaling and translation (the moving scan).
+//! Target: mean endpoint error `|A·x − A*·x|` below 1 mm over the body (the check;
+//! the synthetic-transform construction is common practice).
+
+use sinew_grid::{Affine, Image};
+use sinew_phantom::{generate, PhantomParams};
+use sinew_solve::affine::{apply_to_image, estimate, AffineParams};
+use sinew_solve::AffineMode;
+
+/// `T(t) · R_z(γ)·R_y(β)·R_x(α) · S(s)` about the world origin (the phantom's centre).
+fn known_map(deg: [f64; 3], scale: [f64; 3], t: [f64; 3]) -> Affine {
+    let [a, b, c] = deg.map(f64::to_radians);
+    let rx = [[1.0, 0.0, 0.0], [0.0, a.cos(), -a.sin()], [0.0, a.sin(), a.cos()]];
+    let ry = [[b.cos(), 0.0, b.sin()], [0.0, 1.0, 0.0], [-b.sin(), 0.0, b.cos()]];
+    let rz = [[c.cos(), -c.sin(), 0.0], [c.sin(), c.cos(), 0.0], [0.0, 0.0, 1.0]];
+    let s = [[scale[0], 0.0, 0.0], [0.0, scale[1], 0.0], [0.0, 0.0, scale[2]]];
+    let lin = |m: [[f64; 3]; 3]| Affine::from_parts(m, [0.0; 3]);
+    Affine::from_parts(Affine::IDENTITY.linear(), t).compose(&lin(rz).compose(&lin(ry).compose(&lin(rx).compose(&lin(s)))))
+}
+
+fn body_error(est: &Affine, truth: &Affine, labels: &sinew_grid::LabelMap) -> (f64, f64) {
+    let g = &labels.grid;
+    let [_, ny, nz] = g.shape();
+    let (mut sum, mut max, mut count) = (0.0, 0.0f64, 0usize);
+    for (n, &l) in labels.as_slice().iter().enumerate() {
+        if l == 0 {
+            continue;
+        }
+        let x = g.voxel_to_world([(n / (ny * nz)) as f64, ((n / nz) % ny) as f64, (n % nz) as f64]);
+        let (p, q) = (est.apply(x), truth.apply(x));
+        let e = (0..3).map(|d| (p[d] - q[d]).powi(2)).sum::<f64>().sqrt();
+        sum += e;
+        max = max.max(e);
+        count += 1;
+    }
+    (sum / count as f64, max)
+}
+
+struct Case {
+    fixed: Image,
+    moving: Image,
+    truth: Affine,
+    labels: sinew_grid::LabelMap,
+}
+
+fn case(scale: [f64; 3]) -> Case {
+    let s = generate(11, 1, &PhantomParams::default());
+    let truth = known_map([10.0, 10.0, 10.0], scale, [20.0, -20.0, 20.0]);
+    // moving(y) = subject(A*⁻¹·y), so that fixed(x) = subject(x) = moving(A*·x).
+    let pad = s.image.finite_range().unwrap().0;
+    let moving = apply_to_image(&s.image, &truth.inverse().unwrap(), &s.image.grid, pad);
+    Case { fixed: s.image, moving, truth, labels: s.labels }
+}
+
+#[test]
+fn affine_stage_recovers_rotation_scaling_and_translation_within_a_millimetre() {
+    let c = case([1.05, 0.95, 1.05]);
+    let est = estimate(&c.fixed, &c.moving, None, &AffineParams::new(AffineMode::Affine)).unwrap();
+    let (mean, max) = body_error(&est.affine(), &c.truth, &c.labels);
+    eprintln!("affine: mean endpoint error {mean:.3} mm, max {max:.3} mm, {:.2} s, {:?}, {:?}", est.seconds, est.parameters, est.levels);
+    assert!(mean < 1.0, "mean endpoint error {mean:.3} mm");
+}
+
+#[test]
+fn rigid_stage_recovers_a_rigid_motion_within_a_millimetre() {
+    let c = case([1.0, 1.0, 1.0]);
+    let est = estimate(&c.fixed, &c.moving, None, &AffineParams::new(AffineMode::Rigid)).unwrap();
+    let (mean, max) = body_error(&est.affine(), &c.truth, &c.labels);
+    eprintln!("rigid: mean endpoint error {mean:.3} mm, max {max:.3} mm, {:.2} s, {:?}", est.seconds, est.parameters);
+    assert!(mean < 1.0, "mean endpoint error {mean:.3} mm");
+    // Exact fact: a rotation has determinant 1.
+    assert!((est.affine().determinant() - 1.0).abs() < 1e-9);
+}
+
+#[test]
+fn registration_with_the_affine_stage_holds_the_whole_mapping_in_its_field() {
+    // Small (4 mm) demo subject, affine motion: the final field must reproduce A*·x − x.
+    let s = generate(11, 2, &PhantomParams::small());
+    let truth = known_map([10.0, 10.0, 10.0], [1.05, 0.95, 1.05], [20.0, -20.0, 20.0]);
+    let pad = s.image.finite_range().unwrap().0;
+    let moving = apply_to_image(&s.image, &truth.inverse().unwrap(), &s.image.grid, pad);
+    let params = sinew_solve::RegParams { affine: AffineMode::Affine, ..sinew_solve::RegParams::preset("fast").unwrap() };
+    let reg = sinew_solve::register(&s.image, &moving, None, &params, &mut |_| {}).unwrap();
+    let est = reg.affine.as_ref().expect("the affine stage ran");
+    let (affine_mean, _) = body_error(&est.affine(), &truth, &s.labels);
+    let g = &s.image.grid;
+    let [_, ny, nz] = g.shape();
+    let (mut sum, mut count) = (0.0, 0usize);
+    for (n, &l) in s.labels.as_slice().iter().enumerate() {
+        if l == 0 {
+            continue;
+        }
+        let x = [(n / (ny * nz)) as f64, ((n / nz) % ny) as f64, (n % nz) as f64];
+        let u = [0, 1, 2].map(|d| reg.field.component(d)[n] as f64);
+        let p = g.voxel_to_world([x[0] + u[0], x[1] + u[1], x[2] + u[2]]);
+        let q = truth.apply(g.voxel_to_world(x));
+        // Only where the moving scan holds the point (5 voxels from its border): elsewhere the
+        // moving scan shows padding and no method can find the correspondence.
+        let qv = g.world_to_voxel(q);
+        if (0..3).any(|d| qv[d] < 5.0 || qv[d] > g.shape()[d] as f64 - 6.0) {
+            continue;
+        }
+        sum += (0..3).map(|d| (p[d] - q[d]).powi(2)).sum::<f64>().sqrt();
+        count += 1;
+    }
+    let mean = sum / count as f64;
+    eprintln!("4 mm subject: affine stage {affine_mean:.3} mm, whole field {mean:.3} mm mean endpoint error");
+    // Half a voxel of this 4 mm scan (its coarse levels cannot reach the 2 mm accuracy of the
+    // test above; measured: affine 1.19 mm, whole field 1.81 mm).
+    assert!(affine_mean < 2.0 && mean < 2.0, "affine {affine_mean:.3} mm, field {mean:.3} mm");
+}
