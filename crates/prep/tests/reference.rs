@@ -56,7 +56,7 @@ fn matmul(a: [[f64; 3]; 3], b: [[f64; 3]; 3]) -> [[f64; 3]; 3] {
 }
 
 /// Test affines: axis-aligned, permuted with flips, oblique (rotations 20° and −12°) with a
-/// mirrored axis.
+/// mirrored axis, and a sheared one.
 fn affines() -> Vec<Affine> {
     vec![
         Affine::from_spacing_origin([2.0, 3.0, 4.0], [-10.0, 20.0, 5.0]),
@@ -64,6 +64,11 @@ fn affines() -> Vec<Affine> {
         Affine::from_parts(
             matmul(matmul(rot(2, 20.0), rot(0, -12.0)), [[1.5, 0.0, 0.0], [0.0, -2.0, 0.0], [0.0, 0.0, 2.5]]),
             [12.5, -30.0, 8.0],
+        ),
+        // sheared (sform only in practice): nibabel orthogonalises before choosing axes
+        Affine::from_parts(
+            matmul(rot(1, 15.0), [[1.0, 0.25, 0.0], [0.0, 1.1, 0.1], [0.0, 0.0, 2.5]]),
+            [-100.0, 50.0, -20.0],
         ),
     ]
 }
