@@ -6,10 +6,14 @@
 #![deny(missing_docs)]
 
 pub mod bspline;
+pub mod compose;
 mod error;
+pub mod invert;
 pub mod jacobian;
 pub mod warp;
 
+pub use compose::compose;
 pub use error::TransformError;
+pub use invert::{invert, InvertReport};
 pub use jacobian::{jacobian_determinant, jacobian_stats, JacobianStats};
 pub use warp::{warp_image, warp_image_from, warp_image_into, warp_labels, warp_labels_from};
