@@ -327,39 +327,47 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
     };
 
     let t = Instant::now();
-    write_outputs(&out_paths, &reg.field, args.field_units.into(), &warped, warped_labels.as_ref(), &jacdet)?;
-    if out_paths.qc.is_some() {
-        crate::cmd::qc::qc_for_pair(
-            &args.out,
-            &args.fixed,
-            &args.moving,
-            &inputs,
-            &moving_on_fixed,
-            &warped,
-            &reg.field,
-            &jacdet,
-            warped_labels.as_ref(),
-        )?;
-    }
-    timings.write_s = t.elapsed().as_secs_f64();
-    timings.total_s = t_all.elapsed().as_secs_f64();
-    timings.peak_rss_mb = common::peak_rss_mb();
-    let report = Report {
-        caution: common::CAUTION,
-        sinew_version: env!("CARGO_PKG_VERSION"),
-        inputs: inputs.records()?,
-        params: params.clone(),
-        field_units: args.field_units,
-        threads: rayon::current_num_threads(),
-        moving_resampled,
-        timings,
-        levels: reg.levels,
-        jacobian,
-        dice,
-        outputs: out_paths.all().iter().map(|p| p.display().to_string()).collect(),
-    };
-    // The report is written last: its presence marks a complete output folder.
-    common::write_json(&out_paths.report, &report)?;
+    // A stale report would mark a folder of mixed old and new outputs complete: remove it
+    // first; if any write fails (full disk, ...), remove this run's outputs so that no partial
+    // set is left behind.
+    remove_files([&out_paths.report]);
+    let written = (|| -> anyhow::Result<Report> {
+        write_outputs(&out_paths, &reg.field, args.field_units.into(), &warped, warped_labels.as_ref(), &jacdet)?;
+        if out_paths.qc.is_some() {
+            crate::cmd::qc::qc_for_pair(
+                &args.out,
+                &args.fixed,
+                &args.moving,
+                &inputs,
+                &moving_on_fixed,
+                &warped,
+                &reg.field,
+                &jacdet,
+                warped_labels.as_ref(),
+            )?;
+        }
+        timings.write_s = t.elapsed().as_secs_f64();
+        timings.total_s = t_all.elapsed().as_secs_f64();
+        timings.peak_rss_mb = common::peak_rss_mb();
+        let report = Report {
+            caution: common::CAUTION,
+            sinew_version: env!("CARGO_PKG_VERSION"),
+            inputs: inputs.records()?,
+            params: params.clone(),
+            field_units: args.field_units,
+            threads: rayon::current_num_threads(),
+            moving_resampled,
+            timings,
+            levels: reg.levels,
+            jacobian,
+            dice,
+            outputs: out_paths.all().iter().map(|p| p.display().to_string()).collect(),
+        };
+        // The report is written last: its presence marks a complete output folder.
+        common::write_json(&out_paths.report, &report)?;
+        Ok(report)
+    })();
+    let report = written.inspect_err(|_| remove_files(&out_paths.all()))?;
     if !args.quiet {
         print_summary(&args.out, &report);
     }
@@ -433,6 +441,13 @@ impl OutPaths {
         v.extend(self.qc.clone());
         v.push(self.report.clone());
         v
+    }
+}
+
+/// Removes those of `paths` that exist (best effort: this runs on the way out of an error).
+fn remove_files<P: AsRef<Path>>(paths: impl IntoIterator<Item = P>) {
+    for p in paths {
+        let _ = std::fs::remove_file(p);
     }
 }
 
