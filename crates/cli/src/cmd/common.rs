@@ -59,6 +59,13 @@ impl Inputs {
                 bail!("{}: the mask is empty (no non-zero voxel)", mask.unwrap().display());
             }
         }
+        for (map, path) in [(&fixed_labels_map, fixed_labels), (&moving_labels_map, moving_labels)] {
+            if let (Some(l), Some(p)) = (map, path) {
+                if l.as_slice().iter().all(|&v| v == 0) {
+                    bail!("{}: the label map is empty (every voxel is 0, no label to score)", p.display());
+                }
+            }
+        }
         let mut paths = vec![("fixed", fixed.to_path_buf()), ("moving", moving.to_path_buf())];
         for (role, p) in [("fixed_labels", fixed_labels), ("moving_labels", moving_labels), ("mask", mask)] {
             if let Some(p) = p {
