@@ -428,6 +428,25 @@ impl Drop for Staging {
     }
 }
 
+/// Removes what killed runs left in the output folder: staging folders `.sinew-prep-<pid>`
+/// whose process is gone (checked in `/proc` where it exists; elsewhere every other staging
+/// folder is taken as stale) and temporaries of the log (`.prep_log.json.tmp-*`).
+fn remove_leftovers(out: &Path) {
+    let Ok(entries) = std::fs::read_dir(out) else { return };
+    let proc_fs = Path::new("/proc/self").exists();
+    for e in entries.flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        if let Some(pid) = name.strip_prefix(".sinew-prep-").and_then(|p| p.parse::<u32>().ok()) {
+            let alive = pid == std::process::id() || (proc_fs && Path::new("/proc").join(pid.to_string()).exists());
+            if !alive {
+                let _ = std::fs::remove_dir_all(e.path());
+            }
+        } else if name.starts_with(".prep_log.json.tmp-") {
+            let _ = std::fs::remove_file(e.path());
+        }
+    }
+}
+
 fn run_inner(args: &PrepArgs) -> Result<()> {
     let steps = effective_steps(args)?;
     let jobs = collect_jobs(&args.inputs, &args.labels)?;
@@ -448,6 +467,7 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
     // 2. Prepare every file into a staging folder.
     std::fs::create_dir_all(&args.out)
         .with_context(|| format!("{}: cannot create the output folder", args.out.display()))?;
+    remove_leftovers(&args.out);
     let staging = Staging(args.out.join(format!(".sinew-prep-{}", std::process::id())));
     std::fs::create_dir(&staging.0)
         .with_context(|| format!("{}: cannot create a staging folder", staging.0.display()))?;
@@ -510,7 +530,14 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
     }
     pb.finish_and_clear();
 
-    // 3. Every file succeeded: move the outputs into place, then write the log (last).
+    // 3. Every file succeeded: move the outputs into place, then write the log (last). A log
+    // of an earlier run would vouch for a mix of old and new files if this is interrupted.
+    match std::fs::remove_file(args.out.join("prep_log.json")) {
+        Err(e) if e.kind() != std::io::ErrorKind::NotFound => {
+            return Err(e).with_context(|| format!("{}: cannot remove the old log", args.out.display()));
+        }
+        _ => {}
+    }
     for (from, to) in &moves {
         std::fs::rename(from, to).with_context(|| format!("{}: cannot move the output into place", to.display()))?;
     }
