@@ -1,0 +1,217 @@
+//! Interrupted runs: `sinew prep` and `sinew cohort` killed with SIGKILL at seeded random
+//! moments, then rerun, end with exactly the outputs of an uninterrupted run (files compared
+//! byte for byte; JSON and CSV tables compared without their wall-time fields), and no output
+//! is ever half-written: after every kill each visible NIfTI file reads, each JSON file
+//! parses, and after the final run no temporary or staging file is left anywhere.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::{Duration, Instant};
+
+fn sinew() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_sinew"))
+}
+
+#[track_caller]
+fn run_ok(cmd: &mut Command) {
+    let out = cmd.output().unwrap();
+    assert!(out.status.success(), "{cmd:?} failed: {}", String::from_utf8_lossy(&out.stderr));
+}
+
+/// SplitMix64, for reproducible kill times.
+struct Rng(u64);
+
+impl Rng {
+    fn next_f64(&mut self) -> f64 {
+        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
+        let mut z = self.0;
+        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+        ((z ^ (z >> 31)) >> 11) as f64 / (1u64 << 53) as f64
+    }
+}
+
+/// Every file under `dir`, relative path → full path.
+fn files(dir: &Path) -> BTreeMap<PathBuf, PathBuf> {
+    let mut out = BTreeMap::new();
+    let mut stack = vec![dir.to_path_buf()];
+    while let Some(d) = stack.pop() {
+        // A running command may remove a folder (staging) between listing and reading it.
+        let Ok(entries) = std::fs::read_dir(&d) else { continue };
+        for e in entries.flatten() {
+            let p = e.path();
+            if p.is_dir() {
+                stack.push(p.clone());
+            } else {
+                out.insert(p.strip_prefix(dir).unwrap().to_path_buf(), p);
+            }
+        }
+    }
+    out
+}
+
+fn hidden(rel: &Path) -> bool {
+    rel.components().any(|c| c.as_os_str().to_string_lossy().starts_with('.'))
+}
+
+/// After a kill: every visible output is complete (temporaries and staging folders are
+/// hidden, and are allowed until the rerun removes them).
+fn assert_no_half_written(dir: &Path) {
+    if !dir.exists() {
+        return;
+    }
+    for (rel, p) in files(dir) {
+        if hidden(&rel) {
+            continue;
+        }
+        let name = rel.to_string_lossy();
+        if name.ends_with(".nii.gz") || name.ends_with(".nii") {
+            sinew_io::read_values(&p, &Default::default())
+                .unwrap_or_else(|e| panic!("half-written output after a kill: {e}"));
+        } else if name.ends_with(".json") {
+            let text = std::fs::read_to_string(&p).unwrap();
+            serde_json::from_str::<serde_json::Value>(&text)
+                .unwrap_or_else(|e| panic!("{name}: half-written JSON after a kill: {e}"));
+        } else if name.ends_with(".png") {
+            let b = std::fs::read(&p).unwrap();
+            assert!(b.ends_with(&[0xAE, 0x42, 0x60, 0x82]), "{name}: PNG without its IEND chunk after a kill");
+        }
+    }
+}
+
+/// Runs `cmd` repeatedly, killing it (SIGKILL) at seeded random points: when the output folder
+/// first holds a seeded number of files (drawn below `total`, the file count of a complete run;
+/// temporaries count, so kills land inside writes too), after a further seeded 0–40 ms. Points
+/// are defined by progress rather than by wall time so that they spread over the whole run
+/// whatever the machine's load. Checks the folder after each kill, then lets the command
+/// finish. Returns how many runs were killed before completing.
+fn kill_repeatedly(mut make: impl FnMut() -> Command, out: &Path, total: usize, seed: u64, kills: usize) -> usize {
+    let mut rng = Rng(seed);
+    let mut killed = 0;
+    for _ in 0..kills {
+        let target = (rng.next_f64() * total as f64) as usize;
+        let jitter = Duration::from_secs_f64(0.04 * rng.next_f64());
+        let mut child = make().stdout(Stdio::null()).stderr(Stdio::null()).spawn().unwrap();
+        let t = Instant::now();
+        while child.try_wait().unwrap().is_none()
+            && (!out.exists() || files(out).len() < target)
+            && t.elapsed() < Duration::from_secs(120)
+        {
+            std::thread::sleep(Duration::from_millis(2));
+        }
+        std::thread::sleep(jitter);
+        if child.try_wait().unwrap().is_none() {
+            child.kill().unwrap(); // SIGKILL on Unix
+            killed += 1;
+        }
+        child.wait().unwrap();
+        assert_no_half_written(out);
+    }
+    run_ok(&mut make());
+    killed
+}
+
+/// JSON with wall times removed and `from` (an output folder) replaced by a placeholder in
+/// every string, so two runs into different folders compare equal.
+fn normalised_json(p: &Path, from: &Path) -> serde_json::Value {
+    fn walk(v: &mut serde_json::Value, from: &str) {
+        match v {
+            serde_json::Value::Object(m) => {
+                m.retain(|k, _| !(k == "timings" || k == "seconds" || k.ends_with("_s")));
+                m.values_mut().for_each(|x| walk(x, from));
+            }
+            serde_json::Value::Array(a) => a.iter_mut().for_each(|x| walk(x, from)),
+            serde_json::Value::String(s) => *s = s.replace(from, "<OUT>"),
+            _ => {}
+        }
+    }
+    let mut v: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(p).unwrap()).unwrap();
+    walk(&mut v, &from.display().to_string());
+    v
+}
+
+/// A CSV table without the columns whose header ends in `_s` (wall times).
+fn csv_without_times(p: &Path) -> Vec<Vec<String>> {
+    let text = std::fs::read_to_string(p).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let keep: Vec<bool> = header.iter().map(|h| !h.ends_with("_s")).collect();
+    std::iter::once(header.join(","))
+        .chain(lines.map(str::to_string))
+        .map(|l| l.split(',').zip(&keep).filter(|(_, k)| **k).map(|(c, _)| c.to_string()).collect())
+        .collect()
+}
+
+/// Asserts that the interrupted folder `b` holds exactly the files of the reference `a`, with
+/// equal contents (JSON/CSV without wall times, Markdown summaries without the runtime table),
+/// and no leftovers.
+fn assert_same_outputs(a: &Path, b: &Path) {
+    let (fa, fb) = (files(a), files(b));
+    let leftovers: Vec<_> = fb.keys().filter(|r| hidden(r)).collect();
+    assert!(leftovers.is_empty(), "temporary or staging files left after the resumed run: {leftovers:?}");
+    assert_eq!(fa.keys().collect::<Vec<_>>(), fb.keys().collect::<Vec<_>>(), "different sets of output files");
+    for (rel, pa) in &fa {
+        let pb = &fb[rel];
+        let name = rel.to_string_lossy();
+        if name.ends_with(".json") {
+            assert_eq!(normalised_json(pa, a), normalised_json(pb, b), "{name} differs");
+        } else if name.ends_with(".csv") {
+            assert_eq!(csv_without_times(pa), csv_without_times(pb), "{name} differs");
+        } else if name.ends_with(".md") || name.ends_with(".html") {
+            // Only the runtime figures may differ.
+            let strip = |p: &Path| -> Vec<String> {
+                std::fs::read_to_string(p).unwrap().lines().filter(|l| !l.contains("runtime")).map(str::to_string).collect()
+            };
+            let (sa, sb) = (strip(pa), strip(pb));
+            let differing = sa.iter().zip(&sb).filter(|(x, y)| x != y).count();
+            assert!(sa.len() == sb.len() && differing <= 2, "{name} differs beyond the runtime table");
+        } else {
+            assert!(std::fs::read(pa).unwrap() == std::fs::read(pb).unwrap(), "{name} differs");
+        }
+    }
+}
+
+fn demo(dir: &Path, subjects: u32) {
+    run_ok(sinew().args(["demo", "--small", "-q", "--subjects", &subjects.to_string(), "--out"]).arg(dir));
+}
+
+#[test]
+fn prep_killed_repeatedly_ends_like_an_uninterrupted_run() {
+    let tmp = tempfile::tempdir().unwrap();
+    let data = tmp.path().join("demo");
+    demo(&data, 3);
+    let prep = |out: &Path| {
+        let mut c = sinew();
+        c.args(["prep", "-q", "--spacing", "3,3,3", "--window=-200,300", "--scale", "unit", "--mask-out", "-j", "2"])
+            .arg(&data)
+            .arg("-o")
+            .arg(out);
+        c
+    };
+    let (a, b) = (tmp.path().join("a"), tmp.path().join("b"));
+    run_ok(&mut prep(&a));
+    let killed = kill_repeatedly(|| prep(&b), &b, files(&a).len(), 0x9_2E9, 6);
+    assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
+    assert_same_outputs(&a, &b);
+}
+
+#[test]
+fn cohort_killed_repeatedly_ends_like_an_uninterrupted_run() {
+    let tmp = tempfile::tempdir().unwrap();
+    let data = tmp.path().join("demo");
+    demo(&data, 3);
+    let cohort = |out: &Path| {
+        let mut c = sinew();
+        c.args(["cohort", "-q", "--preset", "fast", "--iterations", "5,5,5,5", "-j", "2", "--all-pairs"])
+            .arg(&data)
+            .arg("-o")
+            .arg(out);
+        c
+    };
+    let (a, b) = (tmp.path().join("a"), tmp.path().join("b"));
+    run_ok(&mut cohort(&a));
+    let killed = kill_repeatedly(|| cohort(&b), &b, files(&a).len(), 0xC0_4027, 6);
+    assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
+    assert_same_outputs(&a, &b);
+}
