@@ -6,7 +6,9 @@ use std::time::Instant;
 use sinew_solve::kernel::Problem;
 
 fn main() {
-    for shape in [[72usize, 56, 96], [144, 112, 192]] {
+    let small_only = std::env::args().any(|a| a == "--small");
+    let shapes: &[[usize; 3]] = if small_only { &[[72, 56, 96]] } else { &[[72, 56, 96], [144, 112, 192]] };
+    for &shape in shapes {
         let n: usize = shape.iter().product();
         let c = 12;
         let fixed: Vec<f32> = (0..n * c).map(|i| ((i as f32) * 0.013).sin() * 0.5 + 0.5).collect();

@@ -14,6 +14,7 @@ pub mod kernel;
 pub mod lbfgs;
 pub mod param;
 mod params;
+mod simd;
 pub mod svf;
 
 pub use driver::{register, EnergyReport, LevelReport, Progress, Registration, Stage};
