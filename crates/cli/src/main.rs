@@ -28,6 +28,8 @@ enum Command {
     Demo(cmd::demo::DemoArgs),
     /// Register a moving scan to a fixed scan and write the field, warped scans and a report.
     Register(cmd::register::RegisterArgs),
+    /// Compose, invert or convert displacement fields.
+    Field(cmd::field::FieldArgs),
     /// Apply a displacement field to a scan or a label map.
     Warp(cmd::warp::WarpArgs),
     /// Bring scans and label maps onto a common grid: orient, resample, crop/pad, window, scale.
@@ -65,6 +67,7 @@ fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Info(a) => cmd::info::run(a),
         Command::Demo(a) => cmd::demo::run(a),
         Command::Register(a) => cmd::register::run(a),
+        Command::Field(a) => cmd::field::run(a),
         Command::Warp(a) => cmd::warp::run(a),
         Command::Prep(a) => cmd::prep::run(a),
         Command::Score(a) => cmd::score::run(a),

@@ -2,6 +2,7 @@
 pub mod cohort;
 pub mod common;
 pub mod demo;
+pub mod field;
 pub mod info;
 pub mod prep;
 pub mod qc;
