@@ -180,6 +180,20 @@ pub fn run(args: CohortArgs) -> anyhow::Result<()> {
         Some(s) => out.join(format!("scores.shard-{}-of-{}.csv", s.k, s.n)),
         None => out.join("scores.csv"),
     };
+    // Temporaries of these tables left by a killed run (the pair folders are cleaned per pair).
+    let table_name = table_path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+    let mut ours = vec![table_name];
+    if args.shard.is_none() {
+        ours.extend(["summary.json".to_string(), "summary.md".to_string()]);
+    }
+    if let Ok(entries) = std::fs::read_dir(&out) {
+        for e in entries.flatten() {
+            let name = e.file_name().to_string_lossy().into_owned();
+            if ours.iter().any(|t| name.starts_with(&format!(".{t}.tmp-"))) {
+                let _ = std::fs::remove_file(e.path());
+            }
+        }
+    }
     sinew_io::atomic::write_bytes_atomic(&table_path, table::to_csv(&rows).as_bytes())?;
     if args.shard.is_none() {
         table::write_summaries(&out, &rows)?;
