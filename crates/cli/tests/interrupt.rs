@@ -161,7 +161,12 @@ fn assert_same_outputs(a: &Path, b: &Path) {
         } else if name.ends_with(".md") || name.ends_with(".html") {
             // Only the runtime figures may differ.
             let strip = |p: &Path| -> Vec<String> {
-                std::fs::read_to_string(p).unwrap().lines().filter(|l| !l.contains("runtime")).map(str::to_string).collect()
+                std::fs::read_to_string(p)
+                    .unwrap()
+                    .lines()
+                    .filter(|l| !l.contains("runtime"))
+                    .map(str::to_string)
+                    .collect()
             };
             let (sa, sb) = (strip(pa), strip(pb));
             let differing = sa.iter().zip(&sb).filter(|(x, y)| x != y).count();
@@ -214,4 +219,57 @@ fn cohort_killed_repeatedly_ends_like_an_uninterrupted_run() {
     let killed = kill_repeatedly(|| cohort(&b), &b, files(&a).len(), 0xC0_4027, 6);
     assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
     assert_same_outputs(&a, &b);
+}
+
+/// A pid with no process (for planting leftovers of a "killed" run).
+fn dead_pid() -> u32 {
+    (4_000_000..).find(|p| !Path::new("/proc").join(p.to_string()).exists()).unwrap()
+}
+
+#[test]
+fn leftovers_of_a_killed_run_are_removed_by_the_rerun() {
+    // Deterministic companion of the random kills: plant what a SIGKILL during each kind of
+    // write leaves behind, rerun, and expect none of it.
+    let tmp = tempfile::tempdir().unwrap();
+    let data = tmp.path().join("demo");
+    demo(&data, 2);
+    let pid = dead_pid();
+
+    let out = tmp.path().join("cohort");
+    let cohort = || {
+        let mut c = sinew();
+        c.args(["cohort", "-q", "--preset", "fast", "--iterations", "3,3,3,3", "--all-pairs"])
+            .arg(&data)
+            .arg("-o")
+            .arg(&out);
+        c
+    };
+    run_ok(&mut cohort());
+    let pair = out.join("pairs/subject_00__subject_01");
+    std::fs::remove_file(pair.join("report.json")).unwrap(); // killed before the report: redo
+    for planted in [
+        out.join(format!(".scores.csv.tmp-{pid}-0")),
+        out.join(format!(".summary.md.tmp-{pid}-1")),
+        pair.join(format!(".field.nii.gz.tmp-{pid}-2")),
+    ] {
+        std::fs::write(&planted, b"half").unwrap();
+    }
+    run_ok(&mut cohort());
+    let left: Vec<_> = files(&out).into_keys().filter(|r| hidden(r)).collect();
+    assert!(left.is_empty(), "cohort rerun left {left:?}");
+
+    let prepped = tmp.path().join("prepped");
+    let prep = || {
+        let mut c = sinew();
+        c.args(["prep", "-q", "--spacing", "6,6,6"]).arg(&data).arg("-o").arg(&prepped);
+        c
+    };
+    run_ok(&mut prep());
+    let staging = prepped.join(format!(".sinew-prep-{pid}"));
+    std::fs::create_dir(&staging).unwrap();
+    std::fs::write(staging.join(format!(".subject_00_image.nii.gz.tmp-{pid}-0")), b"half").unwrap();
+    std::fs::write(prepped.join(format!(".prep_log.json.tmp-{pid}-1")), b"{").unwrap();
+    run_ok(&mut prep());
+    let left: Vec<_> = files(&prepped).into_keys().filter(|r| hidden(r)).collect();
+    assert!(left.is_empty() && !staging.exists(), "prep rerun left {left:?}");
 }

@@ -85,7 +85,8 @@ impl Kit {
     /// An image on another grid (shape `shape`).
     fn image_shaped(&self, name: &str, shape: [usize; 3]) -> PathBuf {
         let grid = Grid::axis_aligned(shape, [4.0; 3], [0.0; 3]);
-        let img = Volume::new(grid, ndarray::Array3::from_shape_fn(shape, |(i, j, k)| (i + 2 * j + 3 * k) as f32)).unwrap();
+        let img =
+            Volume::new(grid, ndarray::Array3::from_shape_fn(shape, |(i, j, k)| (i + 2 * j + 3 * k) as f32)).unwrap();
         let p = self.path(name);
         sinew_io::write_image(&p, &img).unwrap();
         p
@@ -577,7 +578,8 @@ fn warp_nan_moving() {
 fn warp_into_a_missing_folder() {
     let k = Kit::new();
     let out = k.path("no/such/folder/w.nii.gz");
-    let v: [&dyn AsRefOsStr; 7] = [&"warp", &"-m", &k.path("moving.nii"), &"--field", &k.path("field.nii"), &"-o", &out];
+    let v: [&dyn AsRefOsStr; 7] =
+        [&"warp", &"-m", &k.path("moving.nii"), &"--field", &k.path("field.nii"), &"-o", &out];
     fails(&v, k.dir.path(), &out, &[]);
 }
 
@@ -615,14 +617,7 @@ fn prep_on_corrupt_input() {
 fn score_with_mismatched_label_grids() {
     let k = Kit::new();
     let small = k.image_shaped("small_labels.nii", [10, 8, 12]);
-    let v: [&dyn AsRefOsStr; 7] = [
-        &"score",
-        &"--fixed-labels",
-        &k.path("labels.nii"),
-        &"--moving-labels",
-        &small,
-        &"--warped-labels",
-        &small,
-    ];
+    let v: [&dyn AsRefOsStr; 7] =
+        [&"score", &"--fixed-labels", &k.path("labels.nii"), &"--moving-labels", &small, &"--warped-labels", &small];
     fails(&v, k.dir.path(), &small, &[]);
 }
