@@ -90,6 +90,17 @@ pub struct RegisterArgs {
     /// scaling and squaring.
     #[arg(long)]
     pub diffeomorphic: bool,
+    /// Transform model of the deformable stage: dense (a vector per lattice point) or
+    /// bspline (a cubic B-spline control grid every --grid-spacing mm).
+    #[arg(long, value_enum)]
+    pub model: Option<ModelArg>,
+    /// B-spline control point spacing in mm.
+    #[arg(long, value_name = "MM")]
+    pub grid_spacing: Option<f64>,
+    /// Linear pre-alignment before the deformable stage: none, rigid (6 parameters) or
+    /// affine (12); its matrix is written to affine.json and included in field.nii.gz.
+    #[arg(long, value_enum)]
+    pub affine: Option<AffineArg>,
     /// Worker threads (default: all cores).
     #[arg(long, short = 'j')]
     pub threads: Option<usize>,
@@ -110,6 +121,7 @@ const REGISTER_EXAMPLES: &str = "Examples:
 
 Outputs in DIR: field.nii.gz (displacement, pull: warped(x) = moving(x + u(x))),
 warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz, qc.png (unless --no-qc),
+affine.json (with --affine rigid|affine: the 4x4 world-mm matrix, fixed point x -> moving A.x),
 report.json (written last: its presence marks a complete folder).";
 
 /// `--optimiser` values.
@@ -119,6 +131,26 @@ pub enum OptimiserArg {
     Adam,
     /// L-BFGS through argmin.
     Lbfgs,
+}
+
+/// `--model` values.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum ModelArg {
+    /// A displacement vector per lattice point.
+    Dense,
+    /// A cubic B-spline control grid.
+    Bspline,
+}
+
+/// `--affine` values.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum AffineArg {
+    /// No linear stage.
+    None,
+    /// Rotation and translation.
+    Rigid,
+    /// General affine map.
+    Affine,
 }
 
 /// `--similarity` values.
@@ -177,6 +209,22 @@ impl RegisterArgs {
         }
         if self.diffeomorphic {
             p.diffeomorphic = true;
+        }
+        if let Some(m) = self.model {
+            p.model = match m {
+                ModelArg::Dense => sinew_solve::Model::Dense,
+                ModelArg::Bspline => sinew_solve::Model::Bspline,
+            };
+        }
+        if let Some(g) = self.grid_spacing {
+            p.grid_spacing_mm = g;
+        }
+        if let Some(a) = self.affine {
+            p.affine = match a {
+                AffineArg::None => sinew_solve::AffineMode::None,
+                AffineArg::Rigid => sinew_solve::AffineMode::Rigid,
+                AffineArg::Affine => sinew_solve::AffineMode::Affine,
+            };
         }
         p.validate().context("parameters")?;
         Ok(p)
@@ -247,6 +295,8 @@ pub struct Timings {
     pub load_s: f64,
     /// Bringing the moving scan onto the fixed grid.
     pub resample_s: f64,
+    /// The linear (rigid/affine) stage.
+    pub affine_s: f64,
     /// Building the pyramids.
     pub pyramid_s: f64,
     /// Descriptors, all levels.
@@ -288,7 +338,10 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         args.mask.as_deref(),
     )?;
     let mut timings = Timings { load_s: t_all.elapsed().as_secs_f64(), ..Timings::default() };
-    let out_paths = OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, !args.no_qc);
+    let mut out_paths = OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, !args.no_qc);
+    if params.affine != sinew_solve::AffineMode::None {
+        out_paths.affine = Some(args.out.join("affine.json"));
+    }
     common::prepare_out_dir(&args.out, &out_paths.all(), &inputs.paths())?;
 
     let t = Instant::now();
@@ -302,6 +355,7 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
 
     let reg = register_with_progress(&inputs.fixed, &moving_on_fixed, inputs.mask.as_ref(), params, args)?;
     timings.pyramid_s = reg.pyramid_s;
+    timings.affine_s = reg.affine_s;
     timings.upsample_s = reg.upsample_s;
     for l in &reg.levels {
         timings.descriptors_s += l.descriptors_s;
@@ -333,7 +387,10 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
     remove_files([&out_paths.report]);
     let written = (|| -> anyhow::Result<Report> {
         write_outputs(&out_paths, &reg.field, args.field_units.into(), &warped, warped_labels.as_ref(), &jacdet)?;
-        if out_paths.qc.is_some() {
+        if let (Some(path), Some(a)) = (&out_paths.affine, &reg.affine) {
+        common::write_json(path, a)?;
+    }
+    if out_paths.qc.is_some() {
             crate::cmd::qc::qc_for_pair(
                 &args.out,
                 &args.fixed,
@@ -416,6 +473,7 @@ struct OutPaths {
     warped_labels: Option<PathBuf>,
     jacdet: PathBuf,
     qc: Option<PathBuf>,
+    affine: Option<PathBuf>,
     report: PathBuf,
 }
 
@@ -428,6 +486,7 @@ impl OutPaths {
             warped_labels: labels.then(|| dir.join("warped_labels.nii.gz")),
             jacdet: dir.join("jacdet.nii.gz"),
             qc: qc.then(|| dir.join("qc.png")),
+            affine: None,
             report: dir.join("report.json"),
         }
     }
@@ -439,6 +498,7 @@ impl OutPaths {
         v.extend(self.warped_labels.clone());
         v.push(self.jacdet.clone());
         v.extend(self.qc.clone());
+        v.extend(self.affine.clone());
         v.push(self.report.clone());
         v
     }
