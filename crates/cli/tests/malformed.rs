@@ -621,3 +621,15 @@ fn score_with_mismatched_label_grids() {
         [&"score", &"--fixed-labels", &k.path("labels.nii"), &"--moving-labels", &small, &"--warped-labels", &small];
     fails(&v, k.dir.path(), &small, &[]);
 }
+
+#[test]
+fn qc_field_on_another_grid() {
+    let k = Kit::new();
+    let f = k.path("small_field.nii");
+    let grid = Grid::axis_aligned([10, 8, 12], [4.0; 3], [0.0; 3]);
+    sinew_io::write_field(&f, &Field::zeros(grid), sinew_io::FieldUnits::Mm).unwrap();
+    let out = k.path("qc.png");
+    let v: [&dyn AsRefOsStr; 9] =
+        [&"qc", &"-f", &k.path("fixed.nii"), &"-m", &k.path("moving.nii"), &"--field", &f, &"-o", &out];
+    fails(&v, k.dir.path(), &f, &["grid", "fixed"]);
+}
