@@ -79,10 +79,12 @@ pub fn check(bytes: &[u8]) -> usize {
     match &header {
         Ok(h) => {
             accepted += 1;
-            let n: u64 = h.dims.iter().map(|&d| d as u64).product();
+            // The claim can exceed u64 (seven extents up to 32767): compare saturated, as the
+            // reader reports it (found by the fuzzer: this check itself overflowed).
+            let n = h.dims.iter().try_fold(1u64, |acc, &d| acc.checked_mul(d as u64));
             let sane_grid = h.grid.affine().is_finite() && h.grid.shape().iter().all(|&d| d >= 1);
             assert!(sane_grid, "header accepted with a bad grid: {:?}", h.grid);
-            let claimed = n.checked_mul(h.datatype.bytes() as u64);
+            let claimed = n.and_then(|n| n.checked_mul(h.datatype.bytes() as u64));
             assert_eq!(claimed.unwrap_or(u64::MAX), h.data_bytes, "data_bytes disagrees with dims {:?}", h.dims);
             assert!(h.vox_offset >= 352, "vox_offset {} accepted", h.vox_offset);
         }
