@@ -196,7 +196,7 @@ fn prep_killed_repeatedly_ends_like_an_uninterrupted_run() {
     };
     let (a, b) = (tmp.path().join("a"), tmp.path().join("b"));
     run_ok(&mut prep(&a));
-    let killed = kill_repeatedly(|| prep(&b), &b, files(&a).len(), 0x9_2E9, 6);
+    let killed = kill_repeatedly(|| prep(&b), &b, files(&a).len(), 0x92E9, 6);
     assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
     assert_same_outputs(&a, &b);
 }
@@ -216,7 +216,7 @@ fn cohort_killed_repeatedly_ends_like_an_uninterrupted_run() {
     };
     let (a, b) = (tmp.path().join("a"), tmp.path().join("b"));
     run_ok(&mut cohort(&a));
-    let killed = kill_repeatedly(|| cohort(&b), &b, files(&a).len(), 0xC0_4027, 6);
+    let killed = kill_repeatedly(|| cohort(&b), &b, files(&a).len(), 0x00C0_4027, 6);
     assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
     assert_same_outputs(&a, &b);
 }

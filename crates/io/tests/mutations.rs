@@ -124,7 +124,7 @@ fn seeded_mutations_and_fuzz_regressions() {
     assert!(valid >= 10, "only {valid} seeds are readable");
     assert!(check::peak() > 0, "the allocation recorder is not installed");
     let n: usize = std::env::var("SINEW_MUTATIONS").ok().and_then(|v| v.parse().ok()).unwrap_or(4000);
-    let mut rng = Rng(0x5EED_0F_5111E7);
+    let mut rng = Rng(0x5EED_0F51_11E7);
     let mut accepted = 0;
     for _ in 0..n {
         let seed = &seeds[rng.below(seeds.len())];

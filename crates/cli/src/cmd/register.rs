@@ -424,7 +424,7 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         common::write_json(&out_paths.report, &report)?;
         Ok(report)
     })();
-    let report = written.inspect_err(|_| remove_files(&out_paths.all()))?;
+    let report = written.inspect_err(|_| remove_files(out_paths.all()))?;
     if !args.quiet {
         print_summary(&args.out, &report);
     }
