@@ -5,36 +5,9 @@
 
 use std::time::Instant;
 
-use sinew_grid::{Border, Field, Grid};
+use sinew_grid::Border;
 use sinew_phantom::{generate, PhantomParams};
 use sinew_solve::{register, RegParams};
-
-fn smooth_field(grid: &Grid, max_mm: f64) -> Field {
-    let [nx, ny, nz] = grid.shape();
-    let sp = grid.spacing();
-    let mut f = Field::zeros(grid.clone());
-    let tau = std::f64::consts::TAU;
-    for d in 0..3 {
-        let mut comp = f.data.index_axis_mut(ndarray::Axis(0), d);
-        for ((i, j, k), v) in comp.indexed_iter_mut() {
-            let (x, y, z) = (i as f64 / nx as f64, j as f64 / ny as f64, k as f64 / nz as f64);
-            let ph = d as f64 * 1.3;
-            let mm = (tau * x + ph).sin() * (tau * 0.5 * y + 0.4).cos() * (tau * 0.7 * z + ph).sin()
-                + 0.5 * (tau * 1.2 * z + 0.3 * ph).cos() * (tau * 0.8 * x).sin();
-            *v = mm as f32;
-        }
-    }
-    let mut peak = 0.0f64;
-    for n in 0..grid.len() {
-        let l2: f64 = (0..3).map(|d| (f.component(d)[n] as f64).powi(2)).sum();
-        peak = peak.max(l2.sqrt());
-    }
-    for d in 0..3 {
-        let s = (max_mm / peak / sp[d]) as f32;
-        f.data.index_axis_mut(ndarray::Axis(0), d).mapv_inplace(|v| v * s);
-    }
-    f
-}
 
 fn main() {
     let mut args = std::env::args().skip(1);
@@ -48,7 +21,7 @@ fn main() {
     }
     params = table.try_into().expect("valid parameters");
     let subject = generate(11, 0, &PhantomParams::default());
-    let truth = smooth_field(&subject.image.grid, max_mm);
+    let truth = sinew_phantom::known_field(&subject.image.grid, max_mm);
     let fixed = sinew_transform::warp_image(&subject.image, &truth, Border::Nearest).unwrap();
     let t = Instant::now();
     let reg = register(&fixed, &subject.image, None, &params, &mut |_| {}).unwrap();

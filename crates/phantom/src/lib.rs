@@ -181,5 +181,8 @@ pub fn cohort(seed: u64, n: usize, params: &PhantomParams) -> Vec<Subject> {
     (0..n).into_par_iter().map(|i| generate(seed, i, params)).collect()
 }
 
+mod deform;
+pub use deform::known_field;
+
 #[cfg(test)]
 mod tests;
