@@ -158,6 +158,10 @@ pub fn register(
         let (fd, md) = match params.similarity {
             Similarity::MindSsc => rayon::join(|| mind_ssc(&fixed_pyr[level], &mind), || mind_ssc(&moving_pyr[level], &mind)),
             Similarity::Ssd => (intensity_descriptor(&fixed_pyr[level]), intensity_descriptor(&moving_pyr[level])),
+            Similarity::Lncc => rayon::join(
+                || local_standardised(&fixed_pyr[level], params.ncc_sigma),
+                || local_standardised(&moving_pyr[level], params.ncc_sigma),
+            ),
         };
         let descriptors_s = t.elapsed().as_secs_f64();
         let level_mask = mask.map(|m| mask_on(m, &lattice));
@@ -394,7 +398,7 @@ fn mask_on(mask: &LabelMap, grid: &Grid) -> Vec<bool> {
 /// same as with descriptors, whose values lie in [0, 1]); MIND-SSC is invariant to this.
 fn prepare_intensities(fixed: &Image, moving: &Image, sim: Similarity) -> (Image, Image) {
     match sim {
-        Similarity::MindSsc => (fixed.clone(), moving.clone()),
+        Similarity::MindSsc | Similarity::Lncc => (fixed.clone(), moving.clone()),
         Similarity::Ssd => {
             let s = fixed.as_slice();
             let n = s.len() as f64;
@@ -408,6 +412,36 @@ fn prepare_intensities(fixed: &Image, moving: &Image, sim: Similarity) -> (Image
             (f, m)
         }
     }
+}
+
+/// The local-NCC descriptor: `(I − μ)/√(v + ε)` with `μ = G_σ·I` and `v = G_σ·I² − μ²`
+/// (Gaussian window of σ voxels), scaled by 1/√2 so that its squared difference is
+/// `1 − NCC` for unit-variance windows. `ε` is 1e-3 of the image's mean local variance, so
+/// flat regions (noise only) do not blow up.
+pub fn local_standardised(img: &Image, sigma: f64) -> Descriptor {
+    let sp = [1.0; 3];
+    // Standardise globally first (statistics in f64), so that the local moments below are of
+    // order one and `E[I²] − μ²` does not cancel catastrophically in f32.
+    let s = img.as_slice();
+    let n = s.len() as f64;
+    let gm = s.iter().map(|&v| v as f64).sum::<f64>() / n;
+    let gv = s.iter().map(|&v| (v as f64 - gm).powi(2)).sum::<f64>() / n;
+    let gs = if gv > 0.0 { 1.0 / gv.sqrt() } else { 1.0 };
+    let z = img.data.mapv(|v| ((v as f64 - gm) * gs) as f32);
+    let mut mean = z.clone();
+    sinew_grid::smooth::gaussian_smooth(&mut mean, sp, sigma);
+    let mut sq = z.mapv(|v| v * v);
+    sinew_grid::smooth::gaussian_smooth(&mut sq, sp, sigma);
+    let var: Vec<f32> = sq.iter().zip(mean.iter()).map(|(&s, &m)| (s - m * m).max(0.0)).collect();
+    let mean_var = var.iter().map(|&v| v as f64).sum::<f64>() / var.len() as f64;
+    let eps = (1e-3 * mean_var).max(1e-12) as f32;
+    let data = z
+        .iter()
+        .zip(mean.iter())
+        .zip(&var)
+        .map(|((&v, &m), &s)| (v - m) / (s + eps).sqrt() * std::f32::consts::FRAC_1_SQRT_2)
+        .collect();
+    Descriptor { grid: img.grid.clone(), channels: 1, data }
 }
 
 /// A one-channel "descriptor" holding the intensities.

@@ -17,6 +17,6 @@ mod params;
 mod simd;
 pub mod svf;
 
-pub use driver::{register, EnergyReport, LevelReport, Progress, Registration, Stage};
+pub use driver::{local_standardised, register, EnergyReport, LevelReport, Progress, Registration, Stage};
 pub use error::SolveError;
 pub use params::{AffineMode, Model, Optimiser, RegParams, Similarity, PRESETS};

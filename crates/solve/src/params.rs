@@ -24,6 +24,13 @@ pub enum Similarity {
     /// Sum of squared differences of intensities, after scaling both images by the fixed
     /// image's standard deviation: for scans of the same contrast only.
     Ssd,
+    /// Local normalised cross-correlation, in its squared-difference form: each image is
+    /// standardised within a Gaussian window (σ = `ncc_sigma` voxels of each level),
+    /// `Î = (I − μ_σ)/√(σ²_σ + ε)`, and the data term is the SSD of `Î`. For unit-variance
+    /// windows `(Î_f − Î_m)² = 2·(1 − NCC)`, so this is local NCC with the normalisation
+    /// computed before warping (the usual approximation that keeps the cost of SSD);
+    /// invariant to a local affine change of intensities.
+    Lncc,
 }
 
 /// The transform model of the deformable stage.
@@ -77,6 +84,8 @@ pub struct RegParams {
     pub mind_radius: usize,
     /// MIND-SSC neighbourhood dilation d (voxels of each level).
     pub mind_dilation: usize,
+    /// Local NCC window: Gaussian σ in voxels of each level.
+    pub ncc_sigma: f64,
     /// Stop a level early when the total energy improved by less than this fraction over
     /// the last 10 iterations.
     pub tolerance: f64,
@@ -121,6 +130,7 @@ impl RegParams {
             similarity: Similarity::MindSsc,
             mind_radius: 1,
             mind_dilation: 2,
+            ncc_sigma: 2.0,
             tolerance: 1e-4,
             diffeomorphic: false,
             field_sigma: 0.0,
@@ -172,6 +182,9 @@ impl RegParams {
         }
         if self.mind_dilation == 0 || self.mind_dilation > 8 || self.mind_radius > 8 {
             return bad("mind", format!("radius {} / dilation {} out of range", self.mind_radius, self.mind_dilation));
+        }
+        if !(self.ncc_sigma.is_finite() && self.ncc_sigma > 0.0 && self.ncc_sigma <= 16.0) {
+            return bad("ncc_sigma", format!("{} is outside (0, 16]", self.ncc_sigma));
         }
         if !(self.tolerance.is_finite() && self.tolerance >= 0.0) {
             return bad("tolerance", format!("{} must be ≥ 0", self.tolerance));

@@ -83,7 +83,8 @@ pub struct RegisterArgs {
     /// Optimiser: adam or lbfgs.
     #[arg(long, value_enum)]
     pub optimiser: Option<OptimiserArg>,
-    /// Data term: mind-ssc (any contrast) or ssd (same contrast only).
+    /// Data term: mind-ssc (any contrast), lncc (local NCC: contrast changes that are locally
+    /// affine) or ssd (same contrast only).
     #[arg(long, value_enum)]
     pub similarity: Option<SimilarityArg>,
     /// Keep the map free of folds: optimise a stationary velocity field and integrate it by
@@ -160,6 +161,8 @@ pub enum SimilarityArg {
     MindSsc,
     /// Intensity SSD.
     Ssd,
+    /// Local normalised cross-correlation (squared-difference form).
+    Lncc,
 }
 
 impl RegisterArgs {
@@ -205,6 +208,7 @@ impl RegisterArgs {
             p.similarity = match s {
                 SimilarityArg::MindSsc => Similarity::MindSsc,
                 SimilarityArg::Ssd => Similarity::Ssd,
+                SimilarityArg::Lncc => Similarity::Lncc,
             };
         }
         if self.diffeomorphic {
