@@ -46,6 +46,11 @@ pub struct DemoArgs {
     #[arg(long, default_value = "default", value_parser = clap::builder::PossibleValuesParser::new(sinew_solve::PRESETS))]
     pub preset: String,
 
+    /// A TOML parameter file for the pairs (e.g. `model = "bspline"`), applied over the
+    /// preset, as in `sinew register --config`.
+    #[arg(long, value_name = "TOML")]
+    pub config: Option<PathBuf>,
+
     /// No progress bar and no per-subject lines.
     #[arg(long, short)]
     pub quiet: bool,
@@ -97,7 +102,11 @@ pub fn run(args: DemoArgs) -> Result<()> {
     let dir = args.out.display().to_string();
     let res = results.display().to_string();
     let report = results.join("report.html").display().to_string();
+    let config = args.config.as_ref().map(|c| c.display().to_string());
     let mut cohort = vec!["sinew", "cohort", "--all-pairs", &dir, "--out", &res, "--preset", &args.preset];
+    if let Some(c) = &config {
+        cohort.extend(["--config", c.as_str()]);
+    }
     if args.quiet {
         cohort.push("--quiet");
     }
