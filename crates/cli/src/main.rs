@@ -14,7 +14,14 @@ mod ui;
 /// regularisation, multi-resolution pyramid. Research use only; not for diagnosis or
 /// treatment.
 #[derive(Parser, Debug)]
-#[command(name = "sinew", version, about, long_about = None, propagate_version = true)]
+#[command(
+    name = "sinew",
+    version,
+    propagate_version = true,
+    after_help = "Start with `sinew demo --out demo-data` (the whole job on a synthetic cohort), then \
+`sinew register --help`.\nConventions: fields live on the fixed grid and pull, warped(x) = moving(x + u(x)).\n\
+Exit codes: 0 success, 2 error (one line on stderr naming the file and the problem)."
+)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -24,7 +31,8 @@ struct Cli {
 enum Command {
     /// Describe NIfTI files: shape, spacing, orientation, datatype, value range, labels.
     Info(cmd::info::InfoArgs),
-    /// Write the synthetic demo cohort (CT-like abdomens with label maps).
+    /// The whole job on a synthetic cohort: write CT-like abdomens with labels, register and
+    /// score every pair, draw QC sheets and an HTML report.
     Demo(cmd::demo::DemoArgs),
     /// Register a moving scan to a fixed scan and write the field, warped scans and a report.
     Register(cmd::register::RegisterArgs),
