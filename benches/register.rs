@@ -75,7 +75,9 @@ fn main() {
     std::fs::create_dir_all(&work).unwrap();
     let cpu = std::fs::read_to_string("/proc/cpuinfo")
         .ok()
-        .and_then(|s| s.lines().find(|l| l.starts_with("model name")).map(|l| l.split(':').nth(1).unwrap().trim().to_string()))
+        .and_then(|s| {
+            s.lines().find(|l| l.starts_with("model name")).map(|l| l.split(':').nth(1).unwrap().trim().to_string())
+        })
         .unwrap_or_else(|| "unknown CPU".into());
     println!("machine: {cpu}, {} logical cores", std::thread::available_parallelism().map_or(0, |n| n.get()));
     let mut rows = Vec::new();
@@ -96,7 +98,8 @@ fn main() {
                     .status()
                     .expect("sinew runs");
                 assert!(status.success(), "sinew register failed");
-                let report: Value = serde_json::from_str(&std::fs::read_to_string(out.join("report.json")).unwrap()).unwrap();
+                let report: Value =
+                    serde_json::from_str(&std::fs::read_to_string(out.join("report.json")).unwrap()).unwrap();
                 let t = &report["timings"];
                 for (s, name) in STAGES.iter().enumerate() {
                     per_stage[s].push(t[name].as_f64().unwrap_or(f64::NAN));

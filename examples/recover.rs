@@ -53,7 +53,14 @@ fn main() {
     for l in &reg.levels {
         println!(
             "level {} {:?}: {} it, D {:.5}->{:.5} R {:.5}, desc {:.2}s opt {:.2}s",
-            l.level, l.shape, l.iterations, l.energy_start.data, l.energy_end.data, l.energy_end.diffusion, l.descriptors_s, l.optimise_s
+            l.level,
+            l.shape,
+            l.iterations,
+            l.energy_start.data,
+            l.energy_end.data,
+            l.energy_end.diffusion,
+            l.descriptors_s,
+            l.optimise_s
         );
     }
     println!(

@@ -10,7 +10,6 @@ use sinew_grid::{Border, Field, Image, LabelMap};
 use sinew_phantom::{generate, PhantomParams};
 use sinew_solve::{register, RegParams};
 
-
 /// Mean and 95th percentile of |u − u*| in mm over voxels with a non-zero label.
 fn endpoint_error(u: &Field, truth: &Field, body: &LabelMap) -> (f64, f64) {
     let sp = u.grid.spacing();
@@ -55,7 +54,10 @@ fn recover_with(max_mm: f64, remap: bool, params: RegParams) -> (f64, f64, f64) 
     let (mean, p95) = endpoint_error(&reg.field, &truth, &body);
     let det = sinew_transform::jacobian_determinant(&reg.field);
     let stats = sinew_transform::jacobian_stats(&det, None);
-    eprintln!("max {max_mm} mm remap {remap}: EPE mean {mean:.3} mm p95 {p95:.3} mm, folding {:.5}", stats.folding_fraction);
+    eprintln!(
+        "max {max_mm} mm remap {remap}: EPE mean {mean:.3} mm p95 {p95:.3} mm, folding {:.5}",
+        stats.folding_fraction
+    );
     (mean, p95, stats.folding_fraction)
 }
 

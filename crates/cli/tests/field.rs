@@ -26,7 +26,14 @@ fn absolute_mm_map_agrees_with_nibabel_apply_affine() {
     let src = dir.path().join("u.nii.gz");
     sinew_io::write_field(&src, &field(&g), FieldUnits::Mm).unwrap();
     let out = dir.path().join("abs.npy");
-    let st = sinew().args(["field", "convert"]).arg(&src).arg("-o").arg(&out).args(["--to", "absolute-mm"]).status().unwrap();
+    let st = sinew()
+        .args(["field", "convert"])
+        .arg(&src)
+        .arg("-o")
+        .arg(&out)
+        .args(["--to", "absolute-mm"])
+        .status()
+        .unwrap();
     assert!(st.success());
     let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../scripts/ref/bspline_field_convert.py");
     let r = Command::new("python3").arg(script).arg(&src).arg(&out).output().expect("python3 must be installed");
@@ -52,7 +59,15 @@ fn invert_then_compose_gives_the_identity_and_units_round_trip() {
     let (c, _) = sinew_io::read_field(&comp, Default::default()).unwrap();
     let mean = c.data.iter().map(|v| v.abs() as f64).sum::<f64>() / c.data.len() as f64;
     assert!(mean < 0.05, "mean |v then u| {mean} voxels");
-    assert!(sinew().args(["field", "convert"]).arg(&src).arg("-o").arg(&vox).args(["--to", "voxel"]).status().unwrap().success());
+    assert!(sinew()
+        .args(["field", "convert"])
+        .arg(&src)
+        .arg("-o")
+        .arg(&vox)
+        .args(["--to", "voxel"])
+        .status()
+        .unwrap()
+        .success());
     let (back, units) = sinew_io::read_field(&vox, Default::default()).unwrap();
     assert_eq!(units, FieldUnits::Voxel);
     assert!(back.data.iter().zip(u.data.iter()).all(|(a, b)| (a - b).abs() < 1e-5));

@@ -129,7 +129,8 @@ impl Grid {
                 offset[d] = 0.5;
             }
         }
-        let coarse_to_fine = Affine::from_parts([[scale[0], 0.0, 0.0], [0.0, scale[1], 0.0], [0.0, 0.0, scale[2]]], offset);
+        let coarse_to_fine =
+            Affine::from_parts([[scale[0], 0.0, 0.0], [0.0, scale[1], 0.0], [0.0, 0.0, scale[2]]], offset);
         Grid::new(shape, self.affine.compose(&coarse_to_fine)).expect("halving keeps a valid grid")
     }
 

@@ -43,7 +43,6 @@ pub fn build(img: &Image, levels: usize) -> Vec<Image> {
     out
 }
 
-
 #[cfg(test)]
 mod tests {
     use super::*;

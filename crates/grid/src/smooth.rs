@@ -46,7 +46,9 @@ pub fn convolve_axis_slice(data: &mut [f32], shape: [usize; 3], axis: usize, k: 
     let [nx, ny, nz] = shape;
     let r = k.len() / 2;
     match axis {
-        2 => data.par_chunks_mut(nz).for_each_init(|| vec![0.0f32; nz + 2 * r], |line, row| convolve_line(row, line, k)),
+        2 => {
+            data.par_chunks_mut(nz).for_each_init(|| vec![0.0f32; nz + 2 * r], |line, row| convolve_line(row, line, k))
+        }
         1 => data.par_chunks_mut(ny * nz).for_each_init(
             || vec![0.0f32; ny * nz],
             |copy, slab| {

@@ -16,7 +16,17 @@ fn main() {
         let u: Vec<f32> = (0..3 * n).map(|i| ((i as f32) * 0.001).sin() * 2.0).collect();
         let mut g = vec![0.0f32; 3 * n];
         let mut sums = Vec::new();
-        let p = Problem { shape, spacing: [2.0; 3], stride: 1, desc_shape: shape, channels: c, fixed: &fixed, moving: &moving, mask: None, lambda: 0.1 };
+        let p = Problem {
+            shape,
+            spacing: [2.0; 3],
+            stride: 1,
+            desc_shape: shape,
+            channels: c,
+            fixed: &fixed,
+            moving: &moving,
+            mask: None,
+            lambda: 0.1,
+        };
         let mut times = Vec::new();
         for _ in 0..7 {
             let t = Instant::now();
@@ -25,6 +35,11 @@ fn main() {
         }
         times.sort_by(|a, b| a.partial_cmp(b).unwrap());
         let med = times[3];
-        println!("{shape:?}: {:.1} ms per evaluation, {:.1} ns per voxel ({} threads)", med * 1e3, med * 1e9 / n as f64, rayon::current_num_threads());
+        println!(
+            "{shape:?}: {:.1} ms per evaluation, {:.1} ns per voxel ({} threads)",
+            med * 1e3,
+            med * 1e9 / n as f64,
+            rayon::current_num_threads()
+        );
     }
 }

@@ -462,7 +462,12 @@ pub fn estimate(
             }
             done += out.iterations;
         }
-        levels.push(AffineLevel { spacing_mm: fg.spacing(), iterations: done, energy_start: start, energy_end: best.0 });
+        levels.push(AffineLevel {
+            spacing_mm: fg.spacing(),
+            iterations: done,
+            energy_start: start,
+            energy_end: best.0,
+        });
     }
     Ok(AffineEstimate {
         mode: params.mode,
@@ -521,7 +526,12 @@ mod tests {
             let (x, y, z) = (i as f32 - 9.5, j as f32 - 8.5, k as f32 - 10.5);
             *v = (-(x * x / 40.0 + y * y / 25.0 + z * z / 60.0)).exp() * 100.0 + (0.3 * x + 0.2 * z).sin() * 10.0;
         }
-        let fixed = apply_to_image(&img, &Affine::from_parts([[1.0, 0.05, 0.0], [-0.05, 1.0, 0.0], [0.0, 0.0, 1.0]], [2.0, -1.0, 3.0]), &g, 0.0);
+        let fixed = apply_to_image(
+            &img,
+            &Affine::from_parts([[1.0, 0.05, 0.0], [-0.05, 1.0, 0.0], [0.0, 0.0, 1.0]], [2.0, -1.0, 3.0]),
+            &g,
+            0.0,
+        );
         let mind = MindParams::default();
         let level = Level { fixed: mind_ssc(&fixed, &mind), moving: mind_ssc(&img, &mind), mask: None };
         for mode in [AffineMode::Rigid, AffineMode::Affine] {
@@ -541,7 +551,11 @@ mod tests {
                 th[idx] = orig;
                 let fd = (ep - em) / (2.0 * h);
                 let gmax = grad.iter().fold(0.0f64, |a, g| a.max(g.abs()));
-                assert!((fd - grad[idx]).abs() <= 2e-2 * fd.abs() + 2e-3 * gmax, "{mode:?} {idx}: {fd} vs {}", grad[idx]);
+                assert!(
+                    (fd - grad[idx]).abs() <= 2e-2 * fd.abs() + 2e-3 * gmax,
+                    "{mode:?} {idx}: {fd} vs {}",
+                    grad[idx]
+                );
             }
         }
     }

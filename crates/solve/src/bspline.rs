@@ -145,7 +145,11 @@ mod tests {
             theta[idx] = orig;
             let fd = (ep - em) / (2.0 * h as f64);
             eprintln!("{idx}: fd {fd:.6e} analytic {:.6e}", grad[idx]);
-            assert!((fd - grad[idx] as f64).abs() <= 1e-2 * fd.abs() + 1e-3 * gmax, "index {idx}: {fd} vs {}", grad[idx]);
+            assert!(
+                (fd - grad[idx] as f64).abs() <= 1e-2 * fd.abs() + 1e-3 * gmax,
+                "index {idx}: {fd} vs {}",
+                grad[idx]
+            );
         }
     }
 }

@@ -7,9 +7,9 @@ use sinew_features::{mind_ssc, Descriptor, MindParams};
 use sinew_grid::{pyramid, resample, Field, Grid, Image, LabelMap};
 use sinew_transform::{jacobian_determinant, jacobian_stats, JacobianStats};
 
+use crate::bspline::BsplineModel;
 use crate::kernel::{Energy, Problem};
 use crate::param::{GaussianDense, Parametrisation};
-use crate::bspline::BsplineModel;
 use crate::{adam::Adam, affine, lbfgs, svf, AffineMode, Model, Optimiser, RegParams, Similarity, SolveError};
 
 /// A stage of the registration, reported to the observer.
@@ -156,7 +156,9 @@ pub fn register(
         observer(Progress { level, stage: Stage::Descriptors, iteration: 0, iterations: 0 });
         let t = Instant::now();
         let (fd, md) = match params.similarity {
-            Similarity::MindSsc => rayon::join(|| mind_ssc(&fixed_pyr[level], &mind), || mind_ssc(&moving_pyr[level], &mind)),
+            Similarity::MindSsc => {
+                rayon::join(|| mind_ssc(&fixed_pyr[level], &mind), || mind_ssc(&moving_pyr[level], &mind))
+            }
             Similarity::Ssd => (intensity_descriptor(&fixed_pyr[level]), intensity_descriptor(&moving_pyr[level])),
             Similarity::Lncc => rayon::join(
                 || local_standardised(&fixed_pyr[level], params.ncc_sigma),
@@ -339,17 +341,26 @@ fn optimise_level(
                 grad.iter_mut().for_each(|g| *g *= n_vox);
                 adam.step(&mut theta, &grad);
                 iterations = it + 1;
-                observer(Progress { level, stage: Stage::Optimise, iteration: iterations, iterations: plan.iterations });
+                observer(Progress {
+                    level,
+                    stage: Stage::Optimise,
+                    iteration: iterations,
+                    iterations: plan.iterations,
+                });
             }
         }
         Optimiser::Lbfgs => {
-            let out = lbfgs::minimise(theta.clone(), plan.iterations, params.tolerance, &mut |th, g| {
-                obj.eval(th, g).total
-            })
-            .map_err(|message| SolveError::Lbfgs { level, message })?;
+            let out =
+                lbfgs::minimise(theta.clone(), plan.iterations, params.tolerance, &mut |th, g| obj.eval(th, g).total)
+                    .map_err(|message| SolveError::Lbfgs { level, message })?;
             theta = out.param;
             iterations = out.iterations;
-            observer(Progress { level, stage: Stage::Optimise, iteration: plan.iterations, iterations: plan.iterations });
+            observer(Progress {
+                level,
+                stage: Stage::Optimise,
+                iteration: plan.iterations,
+                iterations: plan.iterations,
+            });
         }
     }
     // The energy and field of the final θ.

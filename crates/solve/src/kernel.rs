@@ -275,7 +275,8 @@ fn data_term<const C: usize>(p: [f32; 3], shape: [usize; 3], moving: &[f32], fix
             for cc in 0..2 {
                 let n = a * 4 + b * 2 + cc;
                 base[n] = ((xs[a] * ny + ys[b]) * nz + zs[cc]) * C;
-                wts[n] = [wx[a] * wy[b] * wz[cc], sx[a] * wy[b] * wz[cc], wx[a] * sy[b] * wz[cc], wx[a] * wy[b] * sz[cc]];
+                wts[n] =
+                    [wx[a] * wy[b] * wz[cc], sx[a] * wy[b] * wz[cc], wx[a] * sy[b] * wz[cc], wx[a] * wy[b] * sz[cc]];
             }
         }
     }
@@ -416,7 +417,17 @@ mod tests {
     fn zero_field_on_identical_descriptors_has_zero_energy() {
         let shape = [4, 4, 4];
         let f = smooth_volume(shape, 1, 0.0);
-        let p = Problem { shape, spacing: [1.0; 3], stride: 1, desc_shape: shape, channels: 1, fixed: &f, moving: &f, mask: None, lambda: 1.0 };
+        let p = Problem {
+            shape,
+            spacing: [1.0; 3],
+            stride: 1,
+            desc_shape: shape,
+            channels: 1,
+            fixed: &f,
+            moving: &f,
+            mask: None,
+            lambda: 1.0,
+        };
         let u = vec![0.0; 192];
         let mut g = vec![1.0; 192];
         let e = p.evaluate(&u, &mut g, &mut Vec::new());

@@ -11,7 +11,6 @@ use argmin::core::{CostFunction, Error, Executor, Gradient, State};
 use argmin::solver::linesearch::MoreThuenteLineSearch;
 use argmin::solver::quasinewton::LBFGS;
 
-
 /// The objective as argmin sees it: `eval(θ, ∂E/∂θ) -> E`, behind a lock because argmin
 /// takes `&self`; the last evaluation is cached because argmin asks for the cost and the
 /// gradient of the same point separately.
@@ -71,7 +70,12 @@ pub struct LbfgsOutcome {
 /// Runs L-BFGS (memory 5) from `init` for at most `max_iters` iterations, stopping when the
 /// relative cost change falls below `tol`; `eval(θ, g)` returns the cost and writes the
 /// gradient into `g`.
-pub fn minimise<'a>(init: Vec<f32>, max_iters: usize, tol: f64, eval: &'a mut EvalFn<'a>) -> Result<LbfgsOutcome, String> {
+pub fn minimise<'a>(
+    init: Vec<f32>,
+    max_iters: usize,
+    tol: f64,
+    eval: &'a mut EvalFn<'a>,
+) -> Result<LbfgsOutcome, String> {
     let n = init.len();
     let obj = Objective {
         inner: Mutex::new(Inner { eval, param: Vec::with_capacity(n), cost: 0.0, grad: vec![0.0; n], valid: false }),

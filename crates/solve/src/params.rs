@@ -169,10 +169,16 @@ impl RegParams {
         }
         let n = self.optimised_levels();
         if self.strides.len() != n || self.strides.iter().any(|s| !(1..=4).contains(s)) {
-            return bad("strides", format!("needs {n} values in 1..=4 (one per optimised level), got {:?}", self.strides));
+            return bad(
+                "strides",
+                format!("needs {n} values in 1..=4 (one per optimised level), got {:?}", self.strides),
+            );
         }
         if self.iterations.len() != n {
-            return bad("iterations", format!("needs {n} values (one per optimised level), got {}", self.iterations.len()));
+            return bad(
+                "iterations",
+                format!("needs {n} values (one per optimised level), got {}", self.iterations.len()),
+            );
         }
         if self.step_size.len() != n || self.step_size.iter().any(|s| !(s.is_finite() && *s > 0.0)) {
             return bad("step_size", format!("needs {n} positive values, got {:?}", self.step_size));

@@ -16,7 +16,8 @@ fn known_map(deg: [f64; 3], scale: [f64; 3], t: [f64; 3]) -> Affine {
     let rz = [[c.cos(), -c.sin(), 0.0], [c.sin(), c.cos(), 0.0], [0.0, 0.0, 1.0]];
     let s = [[scale[0], 0.0, 0.0], [0.0, scale[1], 0.0], [0.0, 0.0, scale[2]]];
     let lin = |m: [[f64; 3]; 3]| Affine::from_parts(m, [0.0; 3]);
-    Affine::from_parts(Affine::IDENTITY.linear(), t).compose(&lin(rz).compose(&lin(ry).compose(&lin(rx).compose(&lin(s)))))
+    Affine::from_parts(Affine::IDENTITY.linear(), t)
+        .compose(&lin(rz).compose(&lin(ry).compose(&lin(rx).compose(&lin(s)))))
 }
 
 fn body_error(est: &Affine, truth: &Affine, labels: &sinew_grid::LabelMap) -> (f64, f64) {
@@ -58,7 +59,10 @@ fn affine_stage_recovers_rotation_scaling_and_translation_within_a_millimetre() 
     let c = case([1.05, 0.95, 1.05]);
     let est = estimate(&c.fixed, &c.moving, None, &AffineParams::new(AffineMode::Affine)).unwrap();
     let (mean, max) = body_error(&est.affine(), &c.truth, &c.labels);
-    eprintln!("affine: mean endpoint error {mean:.3} mm, max {max:.3} mm, {:.2} s, {:?}, {:?}", est.seconds, est.parameters, est.levels);
+    eprintln!(
+        "affine: mean endpoint error {mean:.3} mm, max {max:.3} mm, {:.2} s, {:?}, {:?}",
+        est.seconds, est.parameters, est.levels
+    );
     assert!(mean < 1.0, "mean endpoint error {mean:.3} mm");
 }
 
@@ -80,7 +84,8 @@ fn registration_with_the_affine_stage_holds_the_whole_mapping_in_its_field() {
     let truth = known_map([10.0, 10.0, 10.0], [1.05, 0.95, 1.05], [20.0, -20.0, 20.0]);
     let pad = s.image.finite_range().unwrap().0;
     let moving = apply_to_image(&s.image, &truth.inverse().unwrap(), &s.image.grid, pad);
-    let params = sinew_solve::RegParams { affine: AffineMode::Affine, ..sinew_solve::RegParams::preset("fast").unwrap() };
+    let params =
+        sinew_solve::RegParams { affine: AffineMode::Affine, ..sinew_solve::RegParams::preset("fast").unwrap() };
     let reg = sinew_solve::register(&s.image, &moving, None, &params, &mut |_| {}).unwrap();
     let est = reg.affine.as_ref().expect("the affine stage ran");
     let (affine_mean, _) = body_error(&est.affine(), &truth, &s.labels);

@@ -17,7 +17,10 @@ fn bspline_model_recovers_a_15_mm_field_within_half_a_millimetre() {
     let (mean, p95) = common::endpoint_error(&reg.field, &case.truth, &case.body);
     let det = sinew_transform::jacobian_determinant(&reg.field);
     let stats = sinew_transform::jacobian_stats(&det, None);
-    eprintln!("B-spline 15 mm: EPE mean {mean:.3} mm, p95 {p95:.3} mm, folding {:.5}, {secs:.1} s", stats.folding_fraction);
+    eprintln!(
+        "B-spline 15 mm: EPE mean {mean:.3} mm, p95 {p95:.3} mm, folding {:.5}, {secs:.1} s",
+        stats.folding_fraction
+    );
     assert!(mean <= 0.5, "mean endpoint error {mean:.3} mm > 0.5 mm (the quality bar of the design notes)");
     assert_eq!(stats.folding_fraction, 0.0, "the B-spline field folds");
 }

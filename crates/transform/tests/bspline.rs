@@ -28,7 +28,9 @@ fn control_grid_from_an_affine_map_evaluates_to_that_map_everywhere() {
     // Textbook facts: cubic B-splines form a partition of unity and reproduce linear
     // functions exactly (linear precision), so φ(c) = A·p_c − p_c evaluates to A·x − x.
     let a = Affine::from_parts([[1.05, 0.1, -0.03], [-0.08, 0.96, 0.12], [0.02, -0.1, 1.01]], [2.5, -3.0, 1.25]);
-    for (shape, spacing) in [([17, 13, 21], [4.0, 4.0, 4.0]), ([20, 9, 15], [3.3, 2.0, 5.7]), ([6, 5, 4], [1.0, 1.0, 1.0])] {
+    for (shape, spacing) in
+        [([17, 13, 21], [4.0, 4.0, 4.0]), ([20, 9, 15], [3.3, 2.0, 5.7]), ([6, 5, 4], [1.0, 1.0, 1.0])]
+    {
         let mut b = BsplineBasis::new(shape, spacing);
         let phi = b.control_from_affine(&a);
         let n: usize = shape.iter().product();

@@ -101,7 +101,11 @@ pub fn read_finite_image(path: &Path) -> anyhow::Result<Image> {
     let img = sinew_io::read_image(path)?;
     let bad = img.count_non_finite();
     if bad > 0 {
-        bail!("{}: {} voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value)", path.display(), bad);
+        bail!(
+            "{}: {} voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value)",
+            path.display(),
+            bad
+        );
     }
     if let Some((lo, hi)) = img.finite_range() {
         if lo == hi {
@@ -189,7 +193,10 @@ pub fn dice_report(fixed: &LabelMap, moving: &LabelMap, warped: &LabelMap) -> an
 }
 
 /// Runs `f` on a thread pool of `threads` workers (all cores when `None`).
-pub fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> anyhow::Result<T> + Send) -> anyhow::Result<T> {
+pub fn with_threads<T: Send>(
+    threads: Option<usize>,
+    f: impl FnOnce() -> anyhow::Result<T> + Send,
+) -> anyhow::Result<T> {
     match threads {
         None => f(),
         Some(0) => bail!("--threads must be at least 1"),

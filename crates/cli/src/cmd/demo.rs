@@ -116,7 +116,10 @@ pub fn run(args: DemoArgs) -> Result<()> {
         // The per-label summary table, as written to summary.md.
         if let Ok(md) = std::fs::read_to_string(results.join("summary.md")) {
             println!();
-            md.lines().skip_while(|l| !l.starts_with('|')).take_while(|l| l.starts_with('|')).for_each(|l| println!("{l}"));
+            md.lines()
+                .skip_while(|l| !l.starts_with('|'))
+                .take_while(|l| l.starts_with('|'))
+                .for_each(|l| println!("{l}"));
             println!();
         }
         println!(

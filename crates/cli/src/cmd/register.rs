@@ -392,9 +392,9 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
     let written = (|| -> anyhow::Result<Report> {
         write_outputs(&out_paths, &reg.field, args.field_units.into(), &warped, warped_labels.as_ref(), &jacdet)?;
         if let (Some(path), Some(a)) = (&out_paths.affine, &reg.affine) {
-        common::write_json(path, a)?;
-    }
-    if out_paths.qc.is_some() {
+            common::write_json(path, a)?;
+        }
+        if out_paths.qc.is_some() {
             crate::cmd::qc::qc_for_pair(
                 &args.out,
                 &args.fixed,

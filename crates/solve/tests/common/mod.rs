@@ -13,7 +13,6 @@ pub struct Case {
     pub body: LabelMap,
 }
 
-
 /// Demo subject 0 of cohort 11 pulled through a `max_mm` smooth field.
 pub fn known_deformation(max_mm: f64) -> Case {
     let subject = generate(11, 0, &PhantomParams::default());

@@ -149,7 +149,8 @@ impl BsplineBasis {
     pub fn new(shape: [usize; 3], spacing: [f64; 3]) -> BsplineBasis {
         assert!(shape.iter().all(|&n| n > 0), "lattice shape {shape:?} has a zero extent");
         assert!(spacing.iter().all(|s| s.is_finite() && *s > 0.0), "control spacing {spacing:?} must be positive");
-        let control_shape: [usize; 3] = std::array::from_fn(|d| ((shape[d] - 1) as f64 / spacing[d]).floor() as usize + 4);
+        let control_shape: [usize; 3] =
+            std::array::from_fn(|d| ((shape[d] - 1) as f64 / spacing[d]).floor() as usize + 4);
         let forward: [AxisMatrix; 3] =
             std::array::from_fn(|d| AxisMatrix::evaluation(shape[d], control_shape[d], spacing[d]));
         let backward = std::array::from_fn(|d| forward[d].transpose());
