@@ -257,10 +257,11 @@ fn add(a: [f64; 3], b: [f64; 3]) -> [f64; 3] {
 
 impl Anatomy {
     /// Draws a subject. Every random choice comes from `rng`, in a fixed order.
-    pub(crate) fn draw(rng: &mut ChaCha8Rng) -> Anatomy {
+    /// `v` scales the differences between subjects (see `PhantomParams::variation`).
+    pub(crate) fn draw(rng: &mut ChaCha8Rng, v: f64) -> Anatomy {
         // Body: width and depth ±12 %, shifted by up to 2 mm.
-        let sx = 1.0 + rng.sym(0.12);
-        let sy = 1.0 + rng.sym(0.12);
+        let sx = 1.0 + rng.sym(0.12 * v);
+        let sy = 1.0 + rng.sym(0.12 * v);
         // Subcutaneous fat thickens the body from outside: the cavity does not depend on it.
         let fat = rng.range(8.0, 20.0);
         let body = Body {
@@ -276,8 +277,8 @@ impl Anatomy {
         };
         // Organ positions follow the body (scaled with it) and then jitter.
         let at = |x: f64, y: f64, z: f64| [body.centre[0] + x * sx, body.centre[1] + y * sy, z];
-        let breath = rng.sym(10.0); // diaphragm position moves the upper abdomen along z
-        let jitter = |rng: &mut ChaCha8Rng| rng.sym3([10.0, 8.0, 10.0]);
+        let breath = rng.sym(10.0 * v); // diaphragm position moves the upper abdomen along z
+        let jitter = |rng: &mut ChaCha8Rng| rng.sym3([10.0 * v, 8.0 * v, 10.0 * v]);
 
         let spine = Spine {
             x0: body.centre[0],
@@ -440,23 +441,23 @@ impl Anatomy {
         }
 
         let hu = Hu {
-            fat: -100.0 + rng.sym(8.0) as f32,
-            muscle: 50.0 + rng.sym(5.0) as f32,
-            visceral_fat: -85.0 + rng.sym(8.0) as f32,
-            liver: 60.0 + rng.sym(6.0) as f32,
-            spleen: 50.0 + rng.sym(6.0) as f32,
-            kidney_cortex: 35.0 + rng.sym(5.0) as f32,
-            kidney_medulla: 25.0 + rng.sym(5.0) as f32,
-            stomach_wall: 40.0 + rng.sym(5.0) as f32,
-            fluid: 10.0 + rng.sym(5.0) as f32,
-            aorta: 150.0 + rng.sym(15.0) as f32,
-            ivc: 120.0 + rng.sym(15.0) as f32,
-            cortical: 1000.0 + rng.sym(60.0) as f32,
-            cancellous: 300.0 + rng.sym(40.0) as f32,
-            arch: 700.0 + rng.sym(60.0) as f32,
-            disc: 90.0 + rng.sym(10.0) as f32,
-            canal: 15.0 + rng.sym(5.0) as f32,
-            bowel_wall: 20.0 + rng.sym(5.0) as f32,
+            fat: -100.0 + rng.sym(8.0 * v) as f32,
+            muscle: 50.0 + rng.sym(5.0 * v) as f32,
+            visceral_fat: -85.0 + rng.sym(8.0 * v) as f32,
+            liver: 60.0 + rng.sym(6.0 * v) as f32,
+            spleen: 50.0 + rng.sym(6.0 * v) as f32,
+            kidney_cortex: 35.0 + rng.sym(5.0 * v) as f32,
+            kidney_medulla: 25.0 + rng.sym(5.0 * v) as f32,
+            stomach_wall: 40.0 + rng.sym(5.0 * v) as f32,
+            fluid: 10.0 + rng.sym(5.0 * v) as f32,
+            aorta: 150.0 + rng.sym(15.0 * v) as f32,
+            ivc: 120.0 + rng.sym(15.0 * v) as f32,
+            cortical: 1000.0 + rng.sym(60.0 * v) as f32,
+            cancellous: 300.0 + rng.sym(40.0 * v) as f32,
+            arch: 700.0 + rng.sym(60.0 * v) as f32,
+            disc: 90.0 + rng.sym(10.0 * v) as f32,
+            canal: 15.0 + rng.sym(5.0 * v) as f32,
+            bowel_wall: 20.0 + rng.sym(5.0 * v) as f32,
         };
         Anatomy {
             body,

@@ -72,19 +72,25 @@ pub struct PhantomParams {
     pub spacing: [f64; 3],
     /// Standard deviation of the added Gaussian noise, HU.
     pub noise_hu: f32,
+    /// Scale of the differences between subjects: 1 is the demo cohort. It multiplies the
+    /// body's width and depth variation, the organ position jitter, the breathing shift, the
+    /// whole-subject smooth deformation and the intensity jitter of every tissue, so 2 draws
+    /// subjects that differ twice as much (a harder cohort, used to check that settings
+    /// chosen on the demo cohort carry over).
+    pub variation: f64,
 }
 
 impl Default for PhantomParams {
     /// 144 × 112 × 192 voxels of 2 mm (288 × 224 × 384 mm), noise 12 HU.
     fn default() -> Self {
-        PhantomParams { shape: [144, 112, 192], spacing: [2.0; 3], noise_hu: 12.0 }
+        PhantomParams { shape: [144, 112, 192], spacing: [2.0; 3], noise_hu: 12.0, variation: 1.0 }
     }
 }
 
 impl PhantomParams {
     /// 72 × 56 × 96 voxels of 4 mm: the same field of view as the default, 1/8 of the voxels.
     pub fn small() -> Self {
-        PhantomParams { shape: [72, 56, 96], spacing: [4.0; 3], noise_hu: 12.0 }
+        PhantomParams { shape: [72, 56, 96], spacing: [4.0; 3], noise_hu: 12.0, variation: 1.0 }
     }
 
     /// The grid of generated subjects: diagonal affine with `spacing`, centred on the world
@@ -123,11 +129,11 @@ struct Draws {
     fields: Fields,
 }
 
-fn draws(seed: u64, subject_index: usize) -> Draws {
+fn draws(seed: u64, subject_index: usize, variation: f64) -> Draws {
     let mut rng = rng::subject_rng(seed, subject_index);
     let noise_seed = rng.next_u64();
-    let anatomy = Anatomy::draw(&mut rng);
-    let fields = Fields::draw(&mut rng);
+    let anatomy = Anatomy::draw(&mut rng, variation);
+    let fields = Fields::draw(&mut rng, variation);
     Draws { noise_seed, anatomy, fields }
 }
 
@@ -144,7 +150,8 @@ fn draws(seed: u64, subject_index: usize) -> Draws {
 pub fn generate(seed: u64, subject_index: usize, params: &PhantomParams) -> Subject {
     assert!(params.noise_hu.is_finite() && params.noise_hu >= 0.0, "noise_hu {} must be ≥ 0", params.noise_hu);
     let grid = params.grid();
-    let d = draws(seed, subject_index);
+    assert!(params.variation.is_finite() && params.variation >= 0.0, "variation {} must be ≥ 0", params.variation);
+    let d = draws(seed, subject_index, params.variation);
     let (mut image, labels) = render::render(&d.anatomy, &d.fields, &grid, params.noise_hu, d.noise_seed);
     let texture = render::fine_texture(&grid, d.noise_seed ^ 0x7e47_u64.rotate_left(40), TEXTURE_SIGMA_MM);
     for ((v, &l), &t) in image.iter_mut().zip(&labels).zip(&texture) {

@@ -89,9 +89,9 @@ impl Fields {
     /// Draws the fields: a deformation of up to 2 × 3 mm per axis with wavelengths of
     /// 250–600 mm, a bias of up to 2 × 4 HU with wavelengths of 300–800 mm, and a texture
     /// of three modes with wavelengths of 15–50 mm.
-    pub(crate) fn draw(rng: &mut ChaCha8Rng) -> Fields {
+    pub(crate) fn draw(rng: &mut ChaCha8Rng, variation: f64) -> Fields {
         Fields {
-            warp: [(); 3].map(|_| Smooth::draw(rng, 2, 3.0, [250.0, 600.0])),
+            warp: [(); 3].map(|_| Smooth::draw(rng, 2, 3.0 * variation, [250.0, 600.0])),
             bias: Smooth::draw(rng, 2, 4.0, [300.0, 800.0]),
             texture: Smooth::draw(rng, 3, 1.0 / 3.0, [15.0, 50.0]),
         }
