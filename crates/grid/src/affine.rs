@@ -47,8 +47,8 @@ impl Affine {
     /// The linear part `M`.
     pub fn linear(&self) -> [[f64; 3]; 3] {
         let mut l = [[0.0; 3]; 3];
-        for r in 0..3 {
-            l[r].copy_from_slice(&self.m[r][..3]);
+        for (lr, mr) in l.iter_mut().zip(&self.m) {
+            lr.copy_from_slice(&mr[..3]);
         }
         l
     }
@@ -107,18 +107,15 @@ impl Affine {
         }
         // Inverse by the adjugate: M⁻¹ = adj(M) / det(M).
         let mut inv = [[0.0; 3]; 3];
-        for r in 0..3 {
-            for c in 0..3 {
+        for (r, row) in inv.iter_mut().enumerate() {
+            for (c, v) in row.iter_mut().enumerate() {
                 let (r1, r2) = ((c + 1) % 3, (c + 2) % 3);
                 let (c1, c2) = ((r + 1) % 3, (r + 2) % 3);
-                inv[r][c] = (l[r1][c1] * l[r2][c2] - l[r1][c2] * l[r2][c1]) / d;
+                *v = (l[r1][c1] * l[r2][c2] - l[r1][c2] * l[r2][c1]) / d;
             }
         }
         let t = self.translation();
-        let mut ti = [0.0; 3];
-        for r in 0..3 {
-            ti[r] = -(inv[r][0] * t[0] + inv[r][1] * t[1] + inv[r][2] * t[2]);
-        }
+        let ti = inv.map(|row| -(row[0] * t[0] + row[1] * t[1] + row[2] * t[2]));
         Some(Affine::from_parts(inv, ti))
     }
 
@@ -149,9 +146,9 @@ impl Affine {
         let l = self.linear();
         let norms = self.column_norms();
         let mut order: Vec<(f64, usize, usize)> = Vec::with_capacity(9);
-        for c in 0..3 {
-            for r in 0..3 {
-                let v = if norms[c] > 0.0 { l[r][c] / norms[c] } else { 0.0 };
+        for (c, &norm) in norms.iter().enumerate() {
+            for (r, row) in l.iter().enumerate() {
+                let v = if norm > 0.0 { row[c] / norm } else { 0.0 };
                 order.push((v.abs(), c, r));
             }
         }

@@ -18,14 +18,14 @@ pub fn axes_to_keep(grid: &Grid) -> [bool; 3] {
 /// single voxel is never halved.
 pub fn downsample(img: &Image) -> Image {
     let mut keep = axes_to_keep(&img.grid);
-    for d in 0..3 {
-        keep[d] |= img.grid.shape()[d] < 2;
+    for (k, &n) in keep.iter_mut().zip(&img.grid.shape()) {
+        *k |= n < 2;
     }
     let coarse = img.grid.halved(keep);
     let mut data = img.data.clone();
     let kernel = smooth::gaussian_kernel(1.0); // σ = 0.5 coarse voxel = 1 fine voxel
-    for d in 0..3 {
-        if !keep[d] {
+    for (d, &kept) in keep.iter().enumerate() {
+        if !kept {
             smooth::convolve_axis(&mut data, d, &kernel);
         }
     }

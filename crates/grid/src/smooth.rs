@@ -19,8 +19,8 @@ pub fn gaussian_kernel(sigma: f64) -> Vec<f32> {
 /// Smooths `data` in place with a separable Gaussian of standard deviation `sigma_mm / spacing`
 /// voxels along each axis; borders repeat the edge value (`Border::Nearest`).
 pub fn gaussian_smooth(data: &mut Array3<f32>, spacing: [f64; 3], sigma_mm: f64) {
-    for axis in 0..3 {
-        let k = gaussian_kernel(sigma_mm / spacing[axis]);
+    for (axis, &h) in spacing.iter().enumerate() {
+        let k = gaussian_kernel(sigma_mm / h);
         convolve_axis(data, axis, &k);
     }
 }

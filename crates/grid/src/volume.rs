@@ -125,8 +125,8 @@ impl Field {
         let mut f = Field::zeros(grid);
         for (i, j, k) in ndarray::indices((s[0], s[1], s[2])) {
             let w = [mm[[i, j, k, 0]] as f64, mm[[i, j, k, 1]] as f64, mm[[i, j, k, 2]] as f64];
-            for d in 0..3 {
-                f.data[[d, i, j, k]] = (inv[d][0] * w[0] + inv[d][1] * w[1] + inv[d][2] * w[2]) as f32;
+            for (d, row) in inv.iter().enumerate() {
+                f.data[[d, i, j, k]] = (row[0] * w[0] + row[1] * w[1] + row[2] * w[2]) as f32;
             }
         }
         Ok(f)

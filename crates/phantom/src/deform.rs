@@ -27,9 +27,9 @@ pub fn known_field(grid: &Grid, max_mm: f64) -> Field {
         peak = peak.max(l2.sqrt());
     }
     let scale = if peak > 0.0 { max_mm / peak } else { 0.0 };
-    for d in 0..3 {
+    for (d, &h) in sp.iter().enumerate() {
         // mm -> voxels along axis d (axis-aligned phantom grids)
-        let s = (scale / sp[d]) as f32;
+        let s = (scale / h) as f32;
         f.data.index_axis_mut(ndarray::Axis(0), d).mapv_inplace(|v| v * s);
     }
     f

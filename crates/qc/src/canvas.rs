@@ -72,9 +72,9 @@ impl RgbImage {
         if x >= 0 && y >= 0 && (x as u32) < self.width && (y as u32) < self.height {
             let a = alpha.clamp(0.0, 1.0);
             let o = (y as usize * self.width as usize + x as usize) * 3;
-            for d in 0..3 {
-                let old = self.data[o + d] as f32;
-                self.data[o + d] = (old + a * (c[d] as f32 - old)).round() as u8;
+            for (px, &cd) in self.data[o..o + 3].iter_mut().zip(c.iter()) {
+                let old = *px as f32;
+                *px = (old + a * (cd as f32 - old)).round() as u8;
             }
         }
     }

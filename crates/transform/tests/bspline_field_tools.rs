@@ -9,8 +9,8 @@ fn smooth_field(grid: &Grid, max_mm: f64) -> Field {
     let sp = grid.spacing();
     let mut f = Field::zeros(grid.clone());
     let tau = std::f64::consts::TAU;
-    for d in 0..3 {
-        let s = (max_mm / 1.5 / sp[d]) as f32 / 3f32.sqrt();
+    for (d, &h) in sp.iter().enumerate() {
+        let s = (max_mm / 1.5 / h) as f32 / 3f32.sqrt();
         let mut comp = f.data.index_axis_mut(ndarray::Axis(0), d);
         for ((i, j, k), v) in comp.indexed_iter_mut() {
             let (x, y, z) = (i as f64 / nx as f64, j as f64 / ny as f64, k as f64 / nz as f64);

@@ -1,6 +1,6 @@
 //! `sinew field`: compose, invert and convert displacement fields.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 use clap::{Args, Subcommand, ValueEnum};
@@ -73,7 +73,7 @@ enum ConvertTo {
     AbsoluteVoxel,
 }
 
-fn read(path: &PathBuf) -> anyhow::Result<Field> {
+fn read(path: &Path) -> anyhow::Result<Field> {
     let (f, _) = sinew_io::read_field(path, FieldReadOptions::default())?;
     if !f.is_finite() {
         bail!("{}: the field holds NaN or infinite vectors", path.display());

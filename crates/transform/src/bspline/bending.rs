@@ -116,9 +116,9 @@ mod tests {
         let nc = 7 * 6 * 8;
         let a = 0.01;
         let mut phi = vec![0.0f32; 3 * nc];
-        for idx in 0..nc {
+        for (idx, p) in phi[..nc].iter_mut().enumerate() {
             let x = (idx / 48) as f64 * s[0];
-            phi[idx] = (a * (x * x - s[0] * s[0] / 3.0)) as f32;
+            *p = (a * (x * x - s[0] * s[0] / 3.0)) as f32;
         }
         let mut g = vec![0.0f32; 3 * nc];
         let b = bending_energy(&phi, shape, &geom, 0.0, &mut g);
