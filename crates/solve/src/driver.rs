@@ -8,8 +8,10 @@ use sinew_grid::{pyramid, resample, Field, Grid, Image, LabelMap};
 use sinew_transform::{jacobian_determinant, jacobian_stats, JacobianStats};
 
 use crate::bspline::BsplineModel;
+use crate::fold::FoldPenalty;
 use crate::kernel::{Energy, Problem};
 use crate::param::{GaussianDense, Parametrisation};
+use crate::search::{discrete_search, SearchParams};
 use crate::{adam::Adam, affine, lbfgs, svf, AffineMode, Model, Optimiser, RegParams, Similarity, SolveError};
 
 /// A stage of the registration, reported to the observer.
@@ -169,6 +171,19 @@ pub fn register(
         let level_mask = mask.map(|m| mask_on(m, &lattice));
         let init = match variable.take() {
             Some(f) => resample::resample_field(&f, &lattice),
+            None if params.search_radius > 0 => {
+                let sp = SearchParams {
+                    radius: params.search_radius,
+                    patch: 1,
+                    alpha: params.search_alpha,
+                    sigma: 1.0,
+                    rounds: 3,
+                };
+                let u = discrete_search(&fd.data, &md.data, fd.channels, lattice.shape(), &sp);
+                let mut f = Field::zeros(lattice.clone());
+                f.data.as_slice_mut().expect("standard layout").copy_from_slice(&u);
+                f
+            }
             None => Field::zeros(lattice.clone()),
         };
         let t = Instant::now();
@@ -181,7 +196,7 @@ pub fn register(
             fixed: &fd.data,
             moving: &md.data,
             mask: level_mask.as_deref(),
-            lambda: params.lambda,
+            lambda: params.lambda_at(step),
         };
         let mut param: Box<dyn Parametrisation> = match params.model {
             Model::Dense => Box::new(GaussianDense::new(lattice.shape(), params.update_sigma as f64)),
@@ -256,6 +271,10 @@ struct LevelObjective<'a> {
     grad_u: Vec<f32>,
     sums: Vec<[f64; 2]>,
     diffeomorphic: bool,
+    /// The folding penalty and its weight μ and threshold τ (off when μ = 0).
+    fold: FoldPenalty,
+    fold_weight: f32,
+    fold_threshold: f32,
     evaluations: usize,
 }
 
@@ -274,6 +293,7 @@ impl LevelObjective<'_> {
             &self.var
         };
         let mut e = self.problem.evaluate(as_slice(u), &mut self.grad_u, &mut self.sums);
+        e.total += self.fold.evaluate(as_slice(u), self.fold_weight, self.fold_threshold, &mut self.grad_u);
         self.param.adjoint(&self.grad_u, grad_theta);
         e.total += self.param.penalty(theta, grad_theta);
         self.evaluations += 1;
@@ -304,6 +324,9 @@ fn optimise_level(
         grad_u: vec![0.0; 3 * grid.len()],
         sums: Vec::new(),
         diffeomorphic: params.diffeomorphic,
+        fold: FoldPenalty::new(grid.shape(), grid.spacing()),
+        fold_weight: params.fold_weight,
+        fold_threshold: params.fold_threshold,
         evaluations: 0,
     };
     let mut theta = vec![0.0f32; n_theta];
@@ -327,13 +350,13 @@ fn optimise_level(
                         return Err(SolveError::Diverged { level });
                     }
                     // Stop when the best energy has not improved by `tolerance` (relative)
-                    // for 10 iterations.
+                    // for `patience` iterations.
                     if e.total < best * (1.0 - params.tolerance) {
                         best = e.total;
                         since_best = 0;
                     } else {
                         since_best += 1;
-                        if since_best >= 10 {
+                        if since_best >= params.patience {
                             break;
                         }
                     }

@@ -10,10 +10,12 @@ pub mod affine;
 pub mod bspline;
 mod driver;
 mod error;
+pub mod fold;
 pub mod kernel;
 pub mod lbfgs;
 pub mod param;
 mod params;
+pub mod search;
 mod simd;
 pub mod svf;
 

@@ -76,6 +76,21 @@ pub struct RegParams {
     pub step_size: Vec<f32>,
     /// Diffusion weight λ (dimensionless: the regulariser is the squared mm/mm gradient).
     pub lambda: f32,
+    /// Diffusion weight per optimised level, coarsest first; empty = `lambda` at every level.
+    /// A flexible coarse level captures large organ shifts that a stiff one cannot reach.
+    pub lambda_levels: Vec<f32>,
+    /// Weight μ of the folding penalty `μ·P(u)`, `P(u) = 1/N · Σ_x max(0, τ − det J(x))²`
+    /// with `J` the Jacobian of `x ↦ x + u(x)` (central differences, spacing-aware) and
+    /// `τ = fold_threshold`: it pushes determinants away from zero where folds would form,
+    /// so a smaller λ (more Dice) keeps the field free of folds. 0 = off.
+    pub fold_weight: f32,
+    /// Threshold τ of the folding penalty (a determinant below it is penalised).
+    pub fold_threshold: f32,
+    /// Radius R (voxels of the coarsest level) of the discrete displacement search that
+    /// starts the coarsest level (see [`crate::search`]); 0 = off.
+    pub search_radius: usize,
+    /// Weight α of the discrete search's smoothness pull, relative to its mean cost.
+    pub search_alpha: f32,
     /// The optimiser.
     pub optimiser: Optimiser,
     /// The data term.
@@ -86,9 +101,11 @@ pub struct RegParams {
     pub mind_dilation: usize,
     /// Local NCC window: Gaussian σ in voxels of each level.
     pub ncc_sigma: f64,
-    /// Stop a level early when the total energy improved by less than this fraction over
-    /// the last 10 iterations.
+    /// Stop a level early when the best total energy has not improved by this fraction for
+    /// `patience` iterations in a row (Adam; L-BFGS uses it as its own tolerance).
     pub tolerance: f64,
+    /// Iterations without an improvement of `tolerance` before a level stops early (Adam).
+    pub patience: usize,
     /// Optimise a stationary velocity field and integrate it by scaling and squaring, so the
     /// final map is free of folds (invertible).
     pub diffeomorphic: bool,
@@ -126,12 +143,18 @@ impl RegParams {
             iterations: vec![80, 60, 40, 40],
             step_size: vec![0.5, 0.5, 0.3, 0.2],
             lambda: 0.1,
+            lambda_levels: Vec::new(),
+            fold_weight: 0.0,
+            fold_threshold: 0.1,
+            search_radius: 0,
+            search_alpha: 0.5,
             optimiser: Optimiser::Adam,
             similarity: Similarity::MindSsc,
             mind_radius: 1,
             mind_dilation: 2,
             ncc_sigma: 2.0,
             tolerance: 1e-4,
+            patience: 10,
             diffeomorphic: false,
             field_sigma: 0.0,
             update_sigma: 1.0,
@@ -151,6 +174,11 @@ impl RegParams {
             }),
             _ => None,
         }
+    }
+
+    /// The diffusion weight of optimised level `step` (0 = coarsest).
+    pub fn lambda_at(&self, step: usize) -> f32 {
+        self.lambda_levels.get(step).copied().unwrap_or(self.lambda)
     }
 
     /// Number of optimised levels: `levels − finest_level`.
@@ -185,6 +213,32 @@ impl RegParams {
         }
         if !(self.lambda.is_finite() && self.lambda >= 0.0) {
             return bad("lambda", format!("{} must be finite and ≥ 0", self.lambda));
+        }
+        if !(self.lambda_levels.is_empty()
+            || (self.lambda_levels.len() == n && self.lambda_levels.iter().all(|l| l.is_finite() && *l >= 0.0)))
+        {
+            return bad(
+                "lambda_levels",
+                format!("needs none or {n} finite values ≥ 0 (one per optimised level), got {:?}", self.lambda_levels),
+            );
+        }
+        if !(self.fold_weight.is_finite() && self.fold_weight >= 0.0) {
+            return bad("fold_weight", format!("{} must be finite and ≥ 0", self.fold_weight));
+        }
+        if !(self.fold_threshold.is_finite() && (0.0..=1.0).contains(&self.fold_threshold)) {
+            return bad("fold_threshold", format!("{} is outside [0, 1]", self.fold_threshold));
+        }
+        if self.search_radius > 6 {
+            return bad("search_radius", format!("{} is outside 0..=6", self.search_radius));
+        }
+        if !(self.search_alpha.is_finite() && self.search_alpha >= 0.0) {
+            return bad("search_alpha", format!("{} must be finite and ≥ 0", self.search_alpha));
+        }
+        if self.search_radius > 0 && self.strides.first() != Some(&1) {
+            return bad("search_radius", "the discrete search needs stride 1 at the coarsest level".into());
+        }
+        if self.patience == 0 {
+            return bad("patience", "must be at least 1".into());
         }
         if self.mind_dilation == 0 || self.mind_dilation > 8 || self.mind_radius > 8 {
             return bad("mind", format!("radius {} / dilation {} out of range", self.mind_radius, self.mind_dilation));
