@@ -62,8 +62,9 @@ fn main() {
             let dm0 = sinew_score::mean_dice(&d0).unwrap();
             let det = sinew_transform::jacobian_determinant(&reg.field);
             let js = sinew_transform::jacobian_stats(&det, None);
+            let its: Vec<usize> = reg.levels.iter().map(|l| l.iterations).collect();
             println!(
-                "pair {i}-{j}: dice {dm0:.3} -> {dm:.4}  folding {:.4} %  sdlogj {:.3}  {secs:.2} s",
+                "pair {i}-{j}: dice {dm0:.3} -> {dm:.4}  folding {:.4} %  sdlogj {:.3}  {secs:.2} s  iterations {its:?}",
                 100.0 * js.folding_fraction,
                 js.sd_log_j
             );
