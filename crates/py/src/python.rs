@@ -88,7 +88,7 @@ fn register<'py>(
             l.map(|l| {
                 if shape3(&l) != g.shape() {
                     return Err(ApiError::Input(format!(
-                        "{what}: shape {:?} does not match its scan {scan} ({:?})",
+                        "{what}: grid {:?} does not match its scan {scan} ({:?}); resample it onto the scan's grid first",
                         l.shape(),
                         g.shape()
                     )));

@@ -49,7 +49,7 @@ def test_bad_grids():
 
 
 def test_bad_labels_and_masks():
-    _raises(r"fixed_labels: shape \[16, 14, 11\] does not match its scan fixed", sinew.register, SCAN, OTHER,
+    _raises(r"fixed_labels: grid \[16, 14, 11\] does not match its scan fixed \(\[16, 14, 12\]\); resample it", sinew.register, SCAN, OTHER,
             fixed_labels=LABELS[:, :, :11], **QUICK)  # fmt: skip
     _raises("moving_labels: negative label -1", sinew.register, SCAN, OTHER, moving_labels=LABELS.astype(int) - 1, **QUICK)
     _raises(r"fixed_labels: labels are not integers \(found value 0.5\)", sinew.register, SCAN, OTHER,
@@ -112,10 +112,15 @@ def test_bad_fields_and_scores():
     _raises("mind_ssc: radius 9", sinew.mind_ssc, SCAN, radius=9)
 
 
-def test_nibabel_image_with_an_affine_too():
+def test_nibabel_images_with_an_affine_too_or_on_another_grid():
     nib = pytest.importorskip("nibabel")
     img = nib.Nifti1Image(SCAN, np.eye(4))
     _raises("fixed: a nibabel image carries its own affine", sinew.register, img, OTHER, affine=np.eye(4), **QUICK)
+    shifted = np.eye(4)
+    shifted[0, 3] = 1.0
+    labels = nib.Nifti1Image(LABELS, shifted)
+    _raises(r"fixed_labels: grid \[16, 14, 12\] does not match its scan fixed .*resample it onto the scan's grid first",
+            sinew.register, img, nib.Nifti1Image(OTHER, np.eye(4)), fixed_labels=labels, **QUICK)  # fmt: skip
 
 
 def test_the_native_module_refuses_wrong_dtypes_without_crashing():

@@ -330,9 +330,25 @@ def register(
     """
     f_data, f_aff = _scan(fixed, "fixed", _pick(spacing, 0, 1), _pick(affine, 0, 2))
     m_data, m_aff = _scan(moving, "moving", _pick(spacing, 1, 1), _pick(affine, 1, 2))
-    fl = _labels(fixed_labels, "fixed_labels", _pick(spacing, 0, 1), _pick(affine, 0, 2))[0] if fixed_labels is not None else None
-    ml = _labels(moving_labels, "moving_labels", _pick(spacing, 1, 1), _pick(affine, 1, 2))[0] if moving_labels is not None else None
-    mk = _mask(mask, "mask", _pick(spacing, 0, 1), _pick(affine, 0, 2))[0] if mask is not None else None
+
+    def on_scan(conv: Callable, x: Any, what: str, scan: str, data: np.ndarray, aff: np.ndarray) -> Optional[np.ndarray]:
+        # Labels and masks lie on their scan's grid; an image's own affine must agree with
+        # the scan's within 1e-3 mm (entry-wise), as on the command line.
+        if x is None:
+            return None
+        if _is_image(x):
+            arr, l_aff = conv(x, what, None, None)
+            if arr.shape == data.shape and not np.all(np.abs(l_aff[:3] - aff[:3]) <= 1e-3):
+                raise ValueError(
+                    f"{what}: grid {list(arr.shape)} does not match its scan {scan} ({list(data.shape)}); "
+                    "resample it onto the scan's grid first"
+                )
+            return arr
+        return conv(x, what, None, None)[0]
+
+    fl = on_scan(_labels, fixed_labels, "fixed_labels", "fixed", f_data, f_aff)
+    ml = on_scan(_labels, moving_labels, "moving_labels", "moving", m_data, m_aff)
+    mk = on_scan(_mask, mask, "mask", "fixed", f_data, f_aff)
     if units not in ("voxel", "mm"):
         raise ValueError(f'units must be "voxel" or "mm", got {units!r}')
     if preset not in PRESETS:
