@@ -311,7 +311,7 @@ def register(
         config: a dict of parameters, or the path of a TOML parameter file (``sinew register
             --config``), applied over the preset.
         units: units of the returned field: ``"voxel"`` or ``"mm"``.
-        threads: worker threads (default: all cores). Results do not depend on it.
+        threads: worker threads (default: all cores), as ``-j`` on the command line.
         progress: called as ``progress(level, stage, iteration, iterations)`` while the work
             runs (``stage`` is "pyramid", "descriptors", "optimise" or "jacobian"; level 0 is
             the finest). An exception it raises is re-raised when the registration ends.
