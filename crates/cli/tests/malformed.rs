@@ -633,3 +633,31 @@ fn qc_field_on_another_grid() {
         [&"qc", &"-f", &k.path("fixed.nii"), &"-m", &k.path("moving.nii"), &"--field", &f, &"-o", &out];
     fails(&v, k.dir.path(), &f, &["grid", "fixed"]);
 }
+
+// ---------------------------------------------------------------- parameter files and tables
+
+#[test]
+fn config_with_an_empty_per_level_list_and_levels() {
+    let k = Kit::new();
+    for key in ["iterations", "step_size", "strides"] {
+        let cfg = k.put(&format!("empty_{key}.toml"), format!("{key} = []\n").as_bytes());
+        let (c, l): (&dyn AsRefOsStr, &dyn AsRefOsStr) = (&"--config", &"--levels=2");
+        register_fails(&k, &k.path("fixed.nii"), &k.path("moving.nii"), &[c, &cfg, l], &cfg, &[key, "empty"]);
+        // Without --levels the list is not stretched; validation names the file and the key.
+        register_fails(&k, &k.path("fixed.nii"), &k.path("moving.nii"), &[c, &cfg], &cfg, &[key]);
+    }
+}
+
+#[test]
+fn cohort_merge_of_a_table_with_a_non_finite_cell() {
+    let k = Kit::new();
+    let header = "method,pair,fixed,moving,label,name,dice_before,dice,hd95_mm,hd_mm,assd_mm,folding,sdlogj,\
+                  jac_min,landmark_mm,runtime_s";
+    for (n, bad) in ["NaN", "nan", "inf", "-inf"].into_iter().enumerate() {
+        let row = format!("sinew,0,a,b,1,liver,0.5,{bad},3,4,1,0,0.1,0.5,,2");
+        let table = k.put(&format!("scores_{n}.csv"), format!("{header}\n{row}\n").as_bytes());
+        let out = k.path("merged");
+        let args: [&dyn AsRefOsStr; 5] = [&"cohort", &"merge", &table, &"--out", &out];
+        fails(&args, k.dir.path(), &table, &["not a finite number"]);
+    }
+}

@@ -3,7 +3,7 @@
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
-use anyhow::Context;
+use anyhow::{bail, Context};
 use clap::{Args, ValueEnum};
 use serde::Serialize;
 use sinew_grid::{resample, Border, Field, Image, LabelMap};
@@ -172,8 +172,16 @@ impl RegisterArgs {
         if let Some(path) = &self.config {
             let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
             let base = toml::Value::try_from(&p).context("serialising the preset")?;
-            let over: toml::Value =
-                toml::from_str(&text).with_context(|| format!("{}: not valid TOML", path.display()))?;
+            let over: toml::Value = toml::from_str(&text).map_err(|e: toml::de::Error| {
+                // One line: the position and the parser's message (its own text draws the line).
+                let at = e.span().map_or_else(String::new, |s| {
+                    let before = text.get(..s.start).unwrap_or(&text);
+                    let line = before.matches('\n').count() + 1;
+                    let column = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+                    format!(" at line {line}, column {column}")
+                });
+                anyhow::anyhow!("{}: not valid TOML{at}: {}", path.display(), e.message().trim().replace('\n', " "))
+            })?;
             let merged = merge_toml(base, over);
             p = merged.try_into().map_err(|e: toml::de::Error| {
                 anyhow::anyhow!("{}: {}", path.display(), e.message().replace('\n', " "))
@@ -186,11 +194,24 @@ impl RegisterArgs {
             p.finest_level = f;
         }
         if self.levels.is_some() || self.finest_level.is_some() {
-            // Keep per-level lists consistent with a changed level count.
+            // Keep per-level lists consistent with a changed level count. The presets' lists
+            // are never empty, so an empty one came from the config file.
             let n = p.optimised_levels();
-            resize_last(&mut p.iterations, n);
-            resize_last(&mut p.step_size, n);
-            resize_last(&mut p.strides, n);
+            let from_config = || self.config.as_ref().map_or_else(|| "parameters".into(), |c| c.display().to_string());
+            for (name, ok) in [
+                // `--iterations` replaces the list below.
+                ("iterations", self.iterations.is_some() || resize_last(&mut p.iterations, n)),
+                ("step_size", resize_last(&mut p.step_size, n)),
+                ("strides", resize_last(&mut p.strides, n)),
+            ] {
+                if !ok {
+                    bail!(
+                        "{}: `{name}` is empty, so it cannot be stretched to the {n} levels that \
+                         --levels/--finest-level ask for (give one value per level)",
+                        from_config()
+                    );
+                }
+            }
         }
         if let Some(l) = self.lambda {
             p.lambda = l;
@@ -230,21 +251,27 @@ impl RegisterArgs {
                 AffineArg::Affine => sinew_solve::AffineMode::Affine,
             };
         }
-        p.validate().context("parameters")?;
+        match &self.config {
+            Some(c) => p.validate().with_context(|| format!("{}: parameters (with the flags applied)", c.display()))?,
+            None => p.validate().context("parameters")?,
+        }
         Ok(p)
     }
 }
 
-/// Pads a per-level list by repeating its last value, or truncates it from the front
-/// (dropping the coarsest levels), to `n` entries.
-fn resize_last<T: Clone>(v: &mut Vec<T>, n: usize) {
+/// Brings a per-level list (coarsest level first) to `n` entries: pads it at the coarse end by
+/// repeating its first (coarsest) value, or truncates it from the front (dropping the coarsest
+/// levels). Returns `false`, leaving `v` as it is, when `v` is empty and `n > 0` (nothing to
+/// repeat).
+fn resize_last<T: Clone>(v: &mut Vec<T>, n: usize) -> bool {
+    let Some(coarsest) = v.first().cloned() else { return n == 0 };
     while v.len() > n {
         v.remove(0);
     }
     while v.len() < n {
-        let last = v.first().cloned().expect("non-empty per-level list");
-        v.insert(0, last);
+        v.insert(0, coarsest.clone());
     }
+    true
 }
 
 fn merge_toml(base: toml::Value, over: toml::Value) -> toml::Value {

@@ -81,7 +81,8 @@ impl Row {
             self.label.to_string(),
             csv_text(&self.name),
         ];
-        cells.extend(self.numbers().iter().map(|&v| cell(v)));
+        // A non-finite figure is undefined: an empty cell, as the reader requires.
+        cells.extend(self.numbers().iter().map(|&v| cell(v.filter(|x| x.is_finite()))));
         cells.join(",")
     }
 
@@ -153,9 +154,18 @@ pub fn read_csv(path: &Path) -> anyhow::Result<Vec<Row>> {
                 if c[i].is_empty() {
                     return Ok(None);
                 }
-                c[i].parse::<f64>()
-                    .map(Some)
-                    .with_context(|| format!("{}: cell {} {:?} is not a number", at(), i + 1, c[i]))
+                let v = c[i]
+                    .parse::<f64>()
+                    .with_context(|| format!("{}: cell {} {:?} is not a number", at(), i + 1, c[i]))?;
+                if !v.is_finite() {
+                    bail!(
+                        "{}: cell {} {:?} is not a finite number (leave an undefined figure empty)",
+                        at(),
+                        i + 1,
+                        c[i]
+                    );
+                }
+                Ok(Some(v))
             };
             Ok(Row {
                 method: c[0].clone(),
