@@ -61,7 +61,7 @@ fn dict_value<'a>(dict: &'a str, key: &str) -> Option<&'a str> {
     Some(rest.trim_start())
 }
 
-/// Parsed header: (element size 4 or 8, little-endian, fortran order, shape, data offset).
+/// Parsed header: (element size 2, 4 or 8, little-endian, fortran order, shape, data offset).
 type NpyHeader = (usize, bool, bool, Vec<usize>, usize);
 
 fn parse_header(path: &Path, bytes: &[u8]) -> Result<NpyHeader, IoError> {
@@ -80,11 +80,18 @@ fn parse_header(path: &Path, bytes: &[u8]) -> Result<NpyHeader, IoError> {
     let dict = std::str::from_utf8(&bytes[start..end]).map_err(|_| bad(path, "header is not text"))?;
     let descr = dict_value(dict, "descr").ok_or_else(|| bad(path, "no 'descr' in header"))?;
     let (size, little) = match descr.get(..5) {
+        Some("'<f2'") => (2, true),
+        Some("'>f2'") => (2, false),
         Some("'<f4'") => (4, true),
         Some("'>f4'") => (4, false),
         Some("'<f8'") => (8, true),
         Some("'>f8'") => (8, false),
-        _ => return Err(bad(path, format!("dtype {} is not float32/float64", descr.split(',').next().unwrap_or("")))),
+        _ => {
+            return Err(bad(
+                path,
+                format!("dtype {} is not float16/float32/float64", descr.split(',').next().unwrap_or("")),
+            ))
+        }
     };
     let fortran = match dict_value(dict, "fortran_order") {
         Some(v) if v.starts_with("False") => false,
@@ -131,12 +138,7 @@ pub fn read_npy_field(path: &Path, grid: &Grid, layout: NpyLayout) -> Result<Fie
     if data.len() != grid.len() * 3 * size {
         return Err(bad(path, format!("{} data bytes, expected {}", data.len(), grid.len() * 3 * size)));
     }
-    let values: Vec<f32> = match (size, little) {
-        (4, true) => data.chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().expect("4 bytes"))).collect(),
-        (4, false) => data.chunks_exact(4).map(|c| f32::from_be_bytes(c.try_into().expect("4 bytes"))).collect(),
-        (_, true) => data.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes")) as f32).collect(),
-        (_, false) => data.chunks_exact(8).map(|c| f64::from_be_bytes(c.try_into().expect("8 bytes")) as f32).collect(),
-    };
+    let values = decode(data, size, little);
     let dims = (shape[0], shape[1], shape[2], shape[3]);
     let arr = Array4::from_shape_vec(dims.set_f(fortran), values).expect("length checked above");
     let field = match layout {
@@ -144,4 +146,131 @@ pub fn read_npy_field(path: &Path, grid: &Grid, layout: NpyLayout) -> Result<Fie
         NpyLayout::ChannelFirst => Field::from_voxel_components(grid.clone(), arr),
     };
     field.map_err(|cause| IoError::Grid { path: path.to_path_buf(), cause })
+}
+
+/// Converts IEEE 754 binary16 bits to `f32` exactly (every half value is an `f32` value):
+/// sign bit 15, exponent bits 10–14 (bias 15), fraction bits 0–9; exponent 0 is zero or
+/// subnormal (`fraction · 2⁻²⁴`), exponent 31 is infinity or NaN.
+pub fn f16_to_f32(h: u16) -> f32 {
+    let sign = if h & 0x8000 != 0 { -1.0f32 } else { 1.0 };
+    let exp = (h >> 10) & 0x1f;
+    let frac = (h & 0x03ff) as f32;
+    match exp {
+        0 => sign * frac * 2f32.powi(-24),
+        31 if frac == 0.0 => sign * f32::INFINITY,
+        31 => f32::NAN,
+        e => sign * (1.0 + frac / 1024.0) * 2f32.powi(e as i32 - 15),
+    }
+}
+
+/// Decodes `data` of `size`-byte floats (2, 4 or 8) in the given byte order to `f32`.
+fn decode(data: &[u8], size: usize, little: bool) -> Vec<f32> {
+    match (size, little) {
+        (2, true) => data.chunks_exact(2).map(|c| f16_to_f32(u16::from_le_bytes([c[0], c[1]]))).collect(),
+        (2, false) => data.chunks_exact(2).map(|c| f16_to_f32(u16::from_be_bytes([c[0], c[1]]))).collect(),
+        (4, true) => data.chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().expect("4 bytes"))).collect(),
+        (4, false) => data.chunks_exact(4).map(|c| f32::from_be_bytes(c.try_into().expect("4 bytes"))).collect(),
+        (_, true) => data.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes")) as f32).collect(),
+        (_, false) => data.chunks_exact(8).map(|c| f64::from_be_bytes(c.try_into().expect("8 bytes")) as f32).collect(),
+    }
+}
+
+/// A floating-point array read from a `.npy` file or a `.npz` member, in C (row-major)
+/// order whatever the file's order, converted to `f32`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct NpyArray {
+    /// The array's shape as stored.
+    pub shape: Vec<usize>,
+    /// The values in C order (last axis fastest).
+    pub values: Vec<f32>,
+    /// The stored element type: `"float16"`, `"float32"` or `"float64"`.
+    pub dtype: &'static str,
+    /// The `.npz` member it came from (without `.npy`), for `.npz` files.
+    pub npz_key: Option<String>,
+}
+
+/// Parses `.npy` bytes into an [`NpyArray`], refusing more than `max_values` values before
+/// allocating them.
+fn parse_array(path: &Path, bytes: &[u8], max_values: usize) -> Result<NpyArray, IoError> {
+    let (size, little, fortran, shape, offset) = parse_header(path, bytes)?;
+    let count = shape.iter().try_fold(1usize, |a, &d| a.checked_mul(d)).unwrap_or(usize::MAX);
+    if count > max_values {
+        return Err(bad(path, format!("shape {shape:?} holds {count} values, more than the {max_values} expected")));
+    }
+    let data = &bytes[offset..];
+    if data.len() != count * size {
+        return Err(bad(path, format!("{} data bytes, expected {} for shape {shape:?}", data.len(), count * size)));
+    }
+    let mut values = decode(data, size, little);
+    if fortran && shape.len() > 1 {
+        let arr = ndarray::ArrayD::from_shape_vec(ndarray::IxDyn(&shape).f(), values).expect("length checked above");
+        values = arr.as_standard_layout().iter().copied().collect();
+    }
+    let dtype = match size {
+        2 => "float16",
+        4 => "float32",
+        _ => "float64",
+    };
+    Ok(NpyArray { shape, values, dtype, npz_key: None })
+}
+
+/// Reads a floating-point `.npy` array of any shape (float16, float32 or float64, either byte
+/// order, C or Fortran order) holding at most `max_values` values.
+pub fn read_npy_array(path: &Path, max_values: usize) -> Result<NpyArray, IoError> {
+    let file_len = std::fs::metadata(path).map_err(|e| IoError::os(path, "cannot open", e))?.len();
+    if file_len > (max_values as u64).saturating_mul(8).saturating_add(1 << 17) {
+        return Err(bad(path, format!("{file_len} bytes is more than an array of {max_values} values needs")));
+    }
+    let bytes = std::fs::read(path).map_err(|e| IoError::os(path, "cannot read", e))?;
+    parse_array(path, &bytes, max_values)
+}
+
+/// Reads one array of a `.npz` archive (what `numpy.savez` and `numpy.savez_compressed`
+/// write: a zip file of `.npy` members, stored or deflated). With `key`, the member
+/// `key.npy`; without, the archive must hold exactly one array.
+pub fn read_npz_array(path: &Path, key: Option<&str>, max_values: usize) -> Result<NpyArray, IoError> {
+    let file = std::fs::File::open(path).map_err(|e| IoError::os(path, "cannot open", e))?;
+    let mut zip = zip::ZipArchive::new(std::io::BufReader::new(file))
+        .map_err(|e| bad(path, format!("not a .npz (zip) archive: {e}")))?;
+    let names: Vec<String> = zip.file_names().filter_map(|n| n.strip_suffix(".npy")).map(str::to_string).collect();
+    let chosen = match key {
+        Some(k) if names.iter().any(|n| n == k) => k.to_string(),
+        Some(k) => return Err(bad(path, format!("no array {k:?} in the archive (it holds {names:?})"))),
+        None if names.len() == 1 => names[0].clone(),
+        None => {
+            return Err(bad(path, format!("the archive holds {} arrays {names:?}: name one (--npz-key)", names.len())))
+        }
+    };
+    let mut member =
+        zip.by_name(&format!("{chosen}.npy")).map_err(|e| bad(path, format!("cannot open member {chosen:?}: {e}")))?;
+    if member.size() > (max_values as u64).saturating_mul(8).saturating_add(1 << 17) {
+        return Err(bad(path, format!("member {chosen:?} is more than an array of {max_values} values needs")));
+    }
+    let mut bytes = Vec::with_capacity(member.size() as usize);
+    std::io::Read::read_to_end(&mut member, &mut bytes)
+        .map_err(|e| bad(path, format!("cannot read member {chosen:?}: {e}")))?;
+    let mut arr = parse_array(path, &bytes, max_values)?;
+    arr.npz_key = Some(chosen);
+    Ok(arr)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn half_floats_decode_exactly() {
+        // IEEE 754-2008 binary16 examples (exact values, from the format's definition):
+        // 0x3c00 = 1, 0xc000 = -2, 0x7bff = 65504 (largest finite), 0x0001 = 2^-24 (smallest
+        // subnormal), 0x0400 = 2^-14 (smallest normal), 0x3555 = 0.333251953125, 0x7c00 = +inf.
+        assert_eq!(f16_to_f32(0x3c00), 1.0);
+        assert_eq!(f16_to_f32(0xc000), -2.0);
+        assert_eq!(f16_to_f32(0x7bff), 65504.0);
+        assert_eq!(f16_to_f32(0x0001), 2f32.powi(-24));
+        assert_eq!(f16_to_f32(0x0400), 2f32.powi(-14));
+        assert_eq!(f16_to_f32(0x3555), 0.333_251_95);
+        assert_eq!(f16_to_f32(0x7c00), f32::INFINITY);
+        assert!(f16_to_f32(0x7e00).is_nan());
+        assert_eq!(f16_to_f32(0x8000), 0.0);
+    }
 }

@@ -33,4 +33,7 @@ pub enum ScoreError {
         /// The grid's shape.
         shape: [usize; 3],
     },
+    /// A displacement array that no supported convention explains.
+    #[error("displacement array: {0}")]
+    FieldArray(String),
 }

@@ -14,6 +14,9 @@
 //! - **Summary** over a cohort: mean, sample standard deviation (`n − 1`), median and 30th
 //!   percentile with numpy's default linear interpolation ([`Summary`]).
 //!
+//! Fields saved the way training code saves them (batch axis, reversed components,
+//! normalised coordinates, low resolution) are read by [`import::import_array`].
+//!
 //! Push (forward) fields from other tools are turned into pull fields by
 //! [`invert_push_field`].
 #![deny(missing_docs)]
@@ -21,6 +24,7 @@
 mod dice;
 mod edt;
 mod error;
+pub mod import;
 pub mod invert;
 pub mod landmarks;
 pub mod pair;

@@ -10,11 +10,11 @@ use anyhow::{bail, Context};
 use clap::{Args, ValueEnum};
 use serde::{Deserialize, Serialize};
 use sinew_grid::{resample, Field, Grid, LabelMap, WorldPoint};
-use sinew_io::{FieldReadOptions, FieldUnits, NpyLayout};
+use sinew_io::{FieldReadOptions, FieldUnits};
+use sinew_score::import::{import_array, ChannelOrder, Conventions, ImportReport, Layout, LowRes, Units, Values};
 use sinew_score::{InversionReport, LandmarkErrors, PairScore, Warp};
 
 use crate::cmd::common;
-use crate::cmd::register::UnitsArg;
 
 /// Fixed-point iterations used to invert a push field.
 pub const INVERT_ITERATIONS: usize = 20;
@@ -59,12 +59,19 @@ pub struct ScoreArgs {
 const SCORE_HELP: &str = "Examples:
   sinew score --fixed-labels f_labels.nii.gz --moving-labels m_labels.nii.gz --field out/field.nii.gz
   sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field net.npy --layout channel-first
+  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field flow.npz --channel-order kji \\
+      --units norm-edges --values positions
   sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field fwd.nii.gz --direction push --csv
 
 Fields: sinew's convention is a pull field on the fixed grid, warped(x) = moving(x + u(x)).
 NIfTI fields are read in the units their header records (sinew writes it), else --units
-(default mm along the world axes). .npy fields have no grid: they must have the fixed label
-map's shape and are read in --units (default voxel, along the array axes i, j, k).
+(default mm along the world axes), and resampled when they lie on another grid.
+.npy and .npz arrays (float16, float32 or float64) have no grid; read with --units (default
+voxel). Detected, and recorded under field.import in the report: a leading batch axis of
+length 1 (dropped), the end of length 3 holding the components (--layout overrides), and a
+field at a whole fraction 1/f of the fixed grid's resolution (upsampled trilinearly, samples
+placed by --low-res). Given, since no file shows them: --channel-order kji, normalised
+--units, --values positions. A .npz with several arrays needs --npz-key.
 A push field (moving → fixed) is inverted first by fixed-point iteration v(x) = -u(x + v(x))
 (20 iterations); the report gives the residual |v(x) + u(x + v(x))| in mm.
 
@@ -73,31 +80,95 @@ distances in mm between the 6-connected label surfaces (exact Euclidean distance
 folding = share of voxels with det J <= 0; SDlogJ = population standard deviation of ln det J
 over voxels with det J > 0 (the others excluded and counted); landmark error = |x + u(x) - y| in mm.";
 
-/// How to read another tool's field.
+/// How to read another tool's field (see `sinew_score::import` for every convention).
 #[derive(Args, Debug, Clone, Default)]
 pub struct FieldFormat {
-    /// Units of the field's vectors: mm along the world axes, or voxels along i, j, k.
-    /// Default: what a NIfTI header records, else mm; voxel for .npy.
+    /// Units of the field's numbers: mm along the world axes, voxels along i, j, k, or
+    /// normalised [-1, 1] coordinates with -1/+1 at the corner voxels' centres (norm-corners,
+    /// `align_corners=True`) or outer edges (norm-edges, `align_corners=False`).
+    /// Default: what a NIfTI header records, else mm; voxel for .npy/.npz.
     #[arg(long, value_enum)]
-    pub units: Option<UnitsArg>,
-    /// Axis order of a .npy field: channel-last (nx, ny, nz, 3) or channel-first (3, nx, ny, nz).
-    #[arg(long, value_enum, default_value_t = LayoutArg::ChannelLast)]
+    pub units: Option<FieldUnitsArg>,
+    /// Which end of a .npy/.npz array holds the 3 components; auto: the end of length 3.
+    #[arg(long, value_enum, default_value_t = LayoutArg::Auto)]
     pub layout: LayoutArg,
+    /// Order of the components in a .npy/.npz array: ijk (along axes i, j, k) or kji
+    /// (reversed: x = last axis, as PyTorch's grid_sample takes them).
+    #[arg(long, value_enum, default_value_t = ChannelOrderArg::Ijk)]
+    pub channel_order: ChannelOrderArg,
+    /// What a .npy/.npz array holds: displacements, or absolute sampling positions
+    /// (a sampling grid; the identity is subtracted).
+    #[arg(long, value_enum, default_value_t = ValuesArg::Displacement)]
+    pub values: ValuesArg,
+    /// Where the samples of a lower-resolution .npy/.npz field sit: blocks (each at the centre
+    /// of its f voxels: pooling, strided convolutions) or corners (first and last samples on
+    /// the first and last voxels: `interpolate(align_corners=True)`).
+    #[arg(long, value_enum, default_value_t = LowResArg::Blocks)]
+    pub low_res: LowResArg,
+    /// The array to read from a .npz archive holding several.
+    #[arg(long, value_name = "NAME")]
+    pub npz_key: Option<String>,
     /// Direction of the field: pull (fixed → moving, sinew's) or push (moving → fixed,
     /// inverted first).
     #[arg(long, value_enum, default_value_t = DirectionArg::Pull)]
     pub direction: DirectionArg,
 }
 
+/// `--units` values for fields.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum FieldUnitsArg {
+    /// Millimetres along the world axes.
+    Mm,
+    /// Voxels along the array axes i, j, k.
+    Voxel,
+    /// Normalised [-1, 1], -1/+1 at the centres of the corner voxels.
+    NormCorners,
+    /// Normalised [-1, 1], -1/+1 at the outer edges of the corner voxels.
+    NormEdges,
+}
+
 /// `--layout` values.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, ValueEnum, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum LayoutArg {
-    /// (nx, ny, nz, 3).
+    /// The end of length 3.
     #[default]
+    Auto,
+    /// (nx, ny, nz, 3).
     ChannelLast,
     /// (3, nx, ny, nz).
     ChannelFirst,
+}
+
+/// `--channel-order` values.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, ValueEnum)]
+pub enum ChannelOrderArg {
+    /// Components along i, j, k.
+    #[default]
+    Ijk,
+    /// Components along k, j, i.
+    Kji,
+}
+
+/// `--values` values.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, ValueEnum)]
+pub enum ValuesArg {
+    /// Displacements u(x).
+    #[default]
+    Displacement,
+    /// Sampling positions x + u(x).
+    Positions,
+}
+
+/// `--low-res` values.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, ValueEnum)]
+pub enum LowResArg {
+    /// Samples at block centres.
+    #[default]
+    Blocks,
+    /// Samples on the corner voxels.
+    Corners,
 }
 
 /// `--direction` values.
@@ -111,6 +182,37 @@ pub enum DirectionArg {
     Push,
 }
 
+impl FieldFormat {
+    /// The import conventions for .npy/.npz arrays.
+    fn conventions(&self) -> Conventions {
+        Conventions {
+            layout: match self.layout {
+                LayoutArg::Auto => Layout::Auto,
+                LayoutArg::ChannelFirst => Layout::ChannelFirst,
+                LayoutArg::ChannelLast => Layout::ChannelLast,
+            },
+            channel_order: match self.channel_order {
+                ChannelOrderArg::Ijk => ChannelOrder::Ijk,
+                ChannelOrderArg::Kji => ChannelOrder::Kji,
+            },
+            units: match self.units {
+                None | Some(FieldUnitsArg::Voxel) => Units::Voxel,
+                Some(FieldUnitsArg::Mm) => Units::Mm,
+                Some(FieldUnitsArg::NormCorners) => Units::NormCorners,
+                Some(FieldUnitsArg::NormEdges) => Units::NormEdges,
+            },
+            values: match self.values {
+                ValuesArg::Displacement => Values::Displacement,
+                ValuesArg::Positions => Values::Positions,
+            },
+            low_res: match self.low_res {
+                LowResArg::Blocks => LowRes::Blocks,
+                LowResArg::Corners => LowRes::Corners,
+            },
+        }
+    }
+}
+
 /// How a field file was read, for reports.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct FieldNote {
@@ -118,12 +220,20 @@ pub struct FieldNote {
     pub path: String,
     /// SHA-256 of its bytes.
     pub sha256: String,
-    /// "nifti" or "npy".
+    /// "nifti", "npy" or "npz".
     pub format: String,
-    /// The units the vectors were read in ("mm" or "voxel").
+    /// The units the numbers were read in ("mm", "voxel", "norm-corners", "norm-edges").
     pub units: String,
-    /// The `.npy` axis order (for .npy only).
-    pub layout: Option<LayoutArg>,
+    /// For .npy/.npz: the stored element type ("float16", "float32", "float64").
+    #[serde(default)]
+    pub dtype: Option<String>,
+    /// For .npz: the archive member read.
+    #[serde(default)]
+    pub npz_key: Option<String>,
+    /// For .npy/.npz: every convention applied or detected (batch axis, layout, component
+    /// order, units, positions, resolution).
+    #[serde(default)]
+    pub import: Option<ImportReport>,
     /// The direction given.
     pub direction: DirectionArg,
     /// With a push field: the fixed-point inversion and its residual.
@@ -132,51 +242,82 @@ pub struct FieldNote {
     pub resampled_to_fixed_grid: bool,
 }
 
-/// Reads a field file (NIfTI or `.npy`) as a pull field on `fixed_grid`, inverting a push
-/// field first and resampling a NIfTI field given on another grid.
+/// Reads a field file (NIfTI, `.npy` or `.npz`) as a pull field on `fixed_grid`: arrays
+/// through `sinew_score::import` (batch axis, layout, component order, units, positions,
+/// resolution), NIfTI from its header (resampled when on another grid); a push field is
+/// inverted.
 pub fn load_field(path: &Path, fixed_grid: &Grid, fmt: &FieldFormat) -> anyhow::Result<(Field, FieldNote)> {
-    let is_npy = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("npy"));
-    let (field, units) = if is_npy {
-        let layout = match fmt.layout {
-            LayoutArg::ChannelLast => NpyLayout::ChannelLast,
-            LayoutArg::ChannelFirst => NpyLayout::ChannelFirst,
-        };
-        let raw = sinew_io::read_npy_field(path, fixed_grid, layout)
-            .with_context(|| "a .npy field must have the fixed label map's shape")?;
-        match fmt.units.unwrap_or(UnitsArg::Voxel) {
-            UnitsArg::Voxel => (raw, FieldUnits::Voxel),
-            UnitsArg::Mm => {
-                let f = Field::from_world_mm(fixed_grid.clone(), &raw.to_voxel_channel_last())
-                    .with_context(|| format!("{}", path.display()))?;
-                (f, FieldUnits::Mm)
-            }
+    let ext = |e: &str| path.extension().is_some_and(|x| x.eq_ignore_ascii_case(e));
+    let (is_npy, is_npz) = (ext("npy"), ext("npz"));
+    let mut note = FieldNote {
+        path: path.display().to_string(),
+        sha256: common::sha256_file(path)?,
+        format: if is_npy {
+            "npy"
+        } else if is_npz {
+            "npz"
+        } else {
+            "nifti"
         }
+        .into(),
+        units: String::new(),
+        dtype: None,
+        npz_key: None,
+        import: None,
+        direction: fmt.direction,
+        inverted: None,
+        resampled_to_fixed_grid: false,
+    };
+    let field = if is_npy || is_npz {
+        let max_values = fixed_grid.len() * 3;
+        let arr = if is_npy {
+            sinew_io::read_npy_array(path, max_values)?
+        } else {
+            sinew_io::read_npz_array(path, fmt.npz_key.as_deref(), max_values)?
+        };
+        let conv = fmt.conventions();
+        let (field, report) = import_array(&arr.shape, arr.values, fixed_grid, &conv)
+            .with_context(|| format!("{}: on a fixed grid of {:?} voxels", path.display(), fixed_grid.shape()))?;
+        note.units = serde_json::to_value(conv.units)?.as_str().unwrap_or_default().to_string();
+        note.dtype = Some(arr.dtype.to_string());
+        note.npz_key = arr.npz_key;
+        note.resampled_to_fixed_grid = report.resolution_factor > 1;
+        note.import = Some(report);
+        field
     } else {
-        let opts = FieldReadOptions { units: fmt.units.map(FieldUnits::from), ..Default::default() };
-        sinew_io::read_field(path, opts)?
+        let non_default = fmt.channel_order != ChannelOrderArg::Ijk
+            || fmt.values != ValuesArg::Displacement
+            || matches!(fmt.units, Some(FieldUnitsArg::NormCorners | FieldUnitsArg::NormEdges))
+            || fmt.npz_key.is_some();
+        if non_default {
+            bail!(
+                "{}: --channel-order, --values, --npz-key and normalised --units apply to .npy/.npz arrays; a NIfTI \
+                 field is read from its header (mm or voxel)",
+                path.display()
+            );
+        }
+        let units = fmt.units.map(|u| match u {
+            FieldUnitsArg::Voxel => FieldUnits::Voxel,
+            _ => FieldUnits::Mm,
+        });
+        let (field, units) = sinew_io::read_field(path, FieldReadOptions { units, ..Default::default() })?;
+        note.units = units.as_str().into();
+        field
     };
     if !field.is_finite() {
         bail!("{}: the field holds NaN or infinite vectors", path.display());
     }
-    let (field, inverted) = match fmt.direction {
-        DirectionArg::Pull => (field, None),
+    let field = match fmt.direction {
+        DirectionArg::Pull => field,
         DirectionArg::Push => {
             let inv = sinew_score::invert_push_field(&field, INVERT_ITERATIONS);
-            (inv.field, Some(inv.report))
+            note.inverted = Some(inv.report);
+            inv.field
         }
     };
     let resampled = !field.grid.same_as(fixed_grid, 1e-3);
+    note.resampled_to_fixed_grid |= resampled;
     let field = if resampled { resample::resample_field(&field, fixed_grid) } else { field };
-    let note = FieldNote {
-        path: path.display().to_string(),
-        sha256: common::sha256_file(path)?,
-        format: if is_npy { "npy" } else { "nifti" }.into(),
-        units: units.as_str().into(),
-        layout: is_npy.then_some(fmt.layout),
-        direction: fmt.direction,
-        inverted,
-        resampled_to_fixed_grid: resampled,
-    };
     Ok((field, note))
 }
 
