@@ -46,6 +46,10 @@ pub struct CohortArgs {
     /// every pair i<j of the ids in sorted order.
     #[arg(long, value_name = "DIR")]
     pub all_pairs: Option<PathBuf>,
+    /// Pair list: CSV with the header `fixed,moving` (subject ids), one pair a line, in either
+    /// direction; default: the manifest's `[[pair]]` tables, else every pair i<j.
+    #[arg(long, value_name = "CSV")]
+    pub pairs: Option<PathBuf>,
     /// Output folder (created if needed; rerunning into it resumes).
     #[arg(long, short = 'o', value_name = "DIR", required = true)]
     pub out: Option<PathBuf>,
@@ -61,8 +65,9 @@ pub struct CohortArgs {
     /// Diffeomorphic registration (scaling and squaring of a velocity field).
     #[arg(long)]
     pub diffeomorphic: bool,
-    /// Run only share K of N: the pairs whose index (0-based, in the order (0,1), (0,2), …,
-    /// (1,2), …) satisfies index mod N = K − 1. For batch job arrays; join with `merge`.
+    /// Run only share K of N: the pairs whose index (0-based, in pair-list order, else in the
+    /// order (0,1), (0,2), …, (1,2), …) satisfies index mod N = K − 1. For batch job arrays;
+    /// join with `merge`.
     #[arg(long, value_name = "K/N")]
     pub shard: Option<Shard>,
     /// Pairs registered side by side, each with threads/J worker threads.
@@ -78,6 +83,10 @@ pub struct CohortArgs {
     /// or `.npy`), each a field on the fixed subject's grid.
     #[arg(long, value_name = "DIR", requires = "method")]
     pub fields: Option<PathBuf>,
+    /// The method's registration time per pair: CSV with the header `fixed,moving,runtime_s`
+    /// (seconds, as measured by whoever ran it); fills the runtime_s column of its rows.
+    #[arg(long, value_name = "CSV", requires = "method")]
+    pub runtimes: Option<PathBuf>,
     #[command(flatten)]
     pub field_format: FieldFormat,
     /// Print the pairs of this run (index, fixed, moving) and stop.
@@ -110,12 +119,15 @@ const COHORT_HELP: &str = "Examples:
   sinew demo --out demo --small --subjects 5
   sinew cohort --all-pairs demo --out runs/demo --preset fast
   sinew cohort --manifest cohort.toml --out runs/c --jobs 2
-  sinew cohort --all-pairs demo --out runs/demo --method mynet --fields mynet_fields --units voxel
+  sinew cohort --manifest cohort.toml --pairs test_pairs.csv --out runs/c
+  sinew cohort --all-pairs demo --out runs/demo --method mynet --fields mynet_fields --units voxel \\
+      --runtimes mynet_times.csv
   sinew cohort --all-pairs demo --out runs/s3 --shard 3/8      # one job of an array of 8
   sinew cohort merge runs/s1 runs/s2 runs/s3 --out runs/all
 
-Pairs: every i<j of the subjects (fixed = i, moving = j), index 0, 1, … in the order
-(0,1), (0,2), …, (1,2), …; --shard K/N takes the pairs with index mod N = K - 1.
+Pairs: those of --pairs (CSV fixed,moving of subject ids) or of the manifest's [[pair]] tables,
+indexed 0, 1, … in list order; else every i<j of the subjects (fixed = i, moving = j) in the
+order (0,1), (0,2), …, (1,2), …. --shard K/N takes the pairs with index mod N = K - 1.
 Fields of another method: DIR/<fixed>__<moving>.nii.gz (or .nii or .npy), read with --units,
 --layout and --direction as in `sinew score`; the baseline's rows are named 'sinew'.
 Rerunning the same command resumes: finished pairs are skipped, unfinished ones redone.";
@@ -126,14 +138,31 @@ pub fn run(args: CohortArgs) -> anyhow::Result<()> {
         return merge(m);
     }
     let out = args.out.clone().context("--out is required")?;
-    let (subjects, names_dir) = match (&args.manifest, &args.all_pairs) {
-        (Some(m), _) => (manifest::read_manifest(m)?, m.parent().unwrap_or(Path::new(".")).to_path_buf()),
-        (None, Some(d)) => (manifest::scan_folder(d)?, d.clone()),
+    let (subjects, listed, names_dir) = match (&args.manifest, &args.all_pairs) {
+        (Some(m), _) => {
+            let (subjects, listed) = manifest::read_manifest(m)?;
+            (subjects, listed.map(|l| (l, m.clone())), m.parent().unwrap_or(Path::new(".")).to_path_buf())
+        }
+        (None, Some(d)) => (manifest::scan_folder(d)?, None, d.clone()),
         (None, None) => bail!("give --manifest FILE or --all-pairs DIR"),
     };
     let names = score::label_names(&names_dir)?;
-    let pairs: Vec<Pair> =
-        all_pairs(subjects.len()).into_iter().filter(|p| args.shard.map_or(true, |s| s.contains(p.index))).collect();
+    let listed = match (&args.pairs, listed) {
+        (Some(p), Some((_, m))) => {
+            bail!("{}: lists [[pair]] tables and --pairs {} was given too; keep one", m.display(), p.display())
+        }
+        (Some(p), None) => Some((manifest::read_pair_list(p)?, p.clone())),
+        (None, l) => l,
+    };
+    let every = match &listed {
+        Some((named, origin)) => manifest::resolve_pairs(named, &subjects, origin)?,
+        None => all_pairs(subjects.len()),
+    };
+    let pairs: Vec<Pair> = every.into_iter().filter(|p| args.shard.map_or(true, |s| s.contains(p.index))).collect();
+    let runtimes = match &args.runtimes {
+        Some(p) => read_runtimes(p, &subjects)?,
+        None => Default::default(),
+    };
     if args.list {
         for p in &pairs {
             println!("{}\t{}\t{}", p.index, subjects[p.fixed].id, subjects[p.moving].id);
@@ -155,7 +184,7 @@ pub fn run(args: CohortArgs) -> anyhow::Result<()> {
     }
     let jobs = (args.jobs as usize).min(pairs.len().max(1));
     let per_job = (total_threads / jobs).max(1);
-    let ctx = Ctx { args: &args, out: &out, subjects: &subjects, params: register_params(&args)? };
+    let ctx = Ctx { args: &args, out: &out, subjects: &subjects, runtimes: &runtimes, params: register_params(&args)? };
 
     let pb = ui::progress(pairs.len() as u64, "cohort", args.quiet);
     let next = AtomicUsize::new(0);
@@ -245,6 +274,8 @@ struct Ctx<'a> {
     args: &'a CohortArgs,
     out: &'a Path,
     subjects: &'a [Subject],
+    /// An imported method's runtime per (fixed, moving) id pair, s.
+    runtimes: &'a std::collections::BTreeMap<(String, String), f64>,
     params: Option<sinew_solve::RegParams>,
 }
 
@@ -309,7 +340,7 @@ fn complete_report(dir: &Path) -> Option<f64> {
     let all_there = outputs
         .iter()
         .all(|o| o.as_str().and_then(|s| Path::new(s).file_name()).is_some_and(|name| dir.join(name).is_file()));
-    (all_there && dir.join("field.nii.gz").is_file()).then(|| v["timings"]["total_s"].as_f64()).flatten()
+    (all_there && dir.join("field.nii.gz").is_file()).then(|| v["timings"]["register_s"].as_f64()).flatten()
 }
 
 /// Removes temporaries left by an interrupted atomic write (`.<name>.tmp-<pid>-<n>`).
@@ -341,13 +372,16 @@ impl Ctx<'_> {
                         format!("{}: no field {name}.nii.gz, {name}.nii or {name}.npy", fields.display())
                     })?;
                 let record_path = dir.join(format!("{name}.json"));
+                let runtime = self.runtimes.get(&(f.id.clone(), m.id.clone())).copied();
                 if let Some(r) = read_record(&record_path, pair, f, m) {
-                    if r.result.field.as_ref().map(|n| &n.sha256) == Some(&common::sha256_file(&field)?) {
+                    if r.result.field.as_ref().map(|n| &n.sha256) == Some(&common::sha256_file(&field)?)
+                        && r.runtime_s == runtime
+                    {
                         return Ok(Outcome::Skipped);
                     }
                 }
                 remove_stray_temporaries(&dir);
-                self.score_into(pair, method, &field, &self.args.field_format, None, &record_path)?;
+                self.score_into(pair, method, &field, &self.args.field_format, runtime, &record_path)?;
                 Ok(Outcome::Done)
             }
             _ => {
@@ -363,7 +397,7 @@ impl Ctx<'_> {
                         let params = self.params.as_ref().expect("parameters when registering");
                         let report = crate::cmd::register::run_pair(&register_args(self.args, f, m, &dir), params)?;
                         outcome = Outcome::Done;
-                        report.timings.total_s
+                        report.timings.register_s
                     }
                 };
                 if read_record(&score_path, pair, f, m).is_some() {
@@ -405,6 +439,34 @@ impl Ctx<'_> {
         };
         common::write_json(record_path, &rec)
     }
+}
+
+/// Reads `--runtimes`: CSV `fixed,moving,runtime_s` (seconds, finite, ≥ 0) of known subjects.
+fn read_runtimes(
+    path: &Path,
+    subjects: &[Subject],
+) -> anyhow::Result<std::collections::BTreeMap<(String, String), f64>> {
+    let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
+    let (cols, records) = manifest::read_table(&text, path)?;
+    if cols != ["fixed", "moving", "runtime_s"] {
+        bail!("{}: the header must be fixed,moving,runtime_s, found {}", path.display(), cols.join(","));
+    }
+    let mut out = std::collections::BTreeMap::new();
+    for (line, c) in records {
+        for id in [&c[0], &c[1]] {
+            if !subjects.iter().any(|s| &s.id == id) {
+                bail!("{}:{line}: subject {id:?} is not in the cohort", path.display());
+            }
+        }
+        let t: f64 =
+            c[2].parse().ok().filter(|t: &f64| t.is_finite() && *t >= 0.0).with_context(|| {
+                format!("{}:{line}: runtime {:?} is not a number of seconds ≥ 0", path.display(), c[2])
+            })?;
+        if out.insert((c[0].clone(), c[1].clone()), t).is_some() {
+            bail!("{}:{line}: pair {:?} → {:?} is listed twice", path.display(), c[0], c[1]);
+        }
+    }
+    Ok(out)
 }
 
 /// Table rows of every method with scores in `out` for `pairs`.

@@ -23,8 +23,8 @@ pub struct Subject {
     pub landmarks: Option<PathBuf>,
 }
 
-/// One pair: `fixed` = subject `i`, `moving` = subject `j`, `i < j`; `index` counts pairs in
-/// the order (0,1), (0,2), …, (0,n−1), (1,2), ….
+/// One pair: `fixed` and `moving` are subject positions; `index` counts pairs in the order
+/// of a pair list, or for all pairs `i < j` in the order (0,1), (0,2), …, (0,n−1), (1,2), ….
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct Pair {
     /// Position in the list of all pairs.
@@ -90,15 +90,16 @@ fn check_id(id: &str, origin: &Path) -> anyhow::Result<()> {
     Ok(())
 }
 
-/// The subjects of a manifest: TOML (`[[subject]]` tables with `id`, `image`, `labels`, and
-/// optional `mask`, `landmarks`) or CSV (header naming the columns `id,image,labels` and
+/// The subjects of a manifest, and its pairs when it lists them: TOML (`[[subject]]` tables
+/// with `id`, `image`, `labels`, and optional `mask`, `landmarks`; optional `[[pair]]` tables
+/// with `fixed`, `moving`) or CSV (header naming the columns `id,image,labels` and
 /// optionally `mask,landmarks`; empty cells for missing files). Relative paths are taken from
 /// the manifest's folder.
-pub fn read_manifest(path: &Path) -> anyhow::Result<Vec<Subject>> {
+pub fn read_manifest(path: &Path) -> anyhow::Result<(Vec<Subject>, Option<Vec<NamedPair>>)> {
     let text =
         std::fs::read_to_string(path).with_context(|| format!("{}: cannot read the manifest", path.display()))?;
     let is_toml = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("toml"));
-    let mut subjects = if is_toml { parse_toml(&text, path)? } else { parse_csv(&text, path)? };
+    let (mut subjects, pairs) = if is_toml { parse_toml(&text, path)? } else { (parse_csv(&text, path)?, None) };
     let base = path.parent().unwrap_or(Path::new(""));
     for s in &mut subjects {
         for p in [Some(&mut s.image), Some(&mut s.labels), s.mask.as_mut(), s.landmarks.as_mut()].into_iter().flatten()
@@ -109,25 +110,71 @@ pub fn read_manifest(path: &Path) -> anyhow::Result<Vec<Subject>> {
         }
     }
     check_subjects(&subjects, path)?;
-    Ok(subjects)
+    Ok((subjects, pairs))
 }
 
-fn parse_toml(text: &str, path: &Path) -> anyhow::Result<Vec<Subject>> {
+/// A pair named by subject ids, as a pair list or a manifest's `[[pair]]` table gives it.
+#[derive(Clone, Debug, PartialEq, Eq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NamedPair {
+    /// Fixed subject id.
+    pub fixed: String,
+    /// Moving subject id.
+    pub moving: String,
+}
+
+fn parse_toml(text: &str, path: &Path) -> anyhow::Result<(Vec<Subject>, Option<Vec<NamedPair>>)> {
     #[derive(Deserialize)]
     #[serde(deny_unknown_fields)]
     struct Manifest {
         subject: Vec<Subject>,
+        #[serde(default)]
+        pair: Option<Vec<NamedPair>>,
     }
     let m: Manifest = toml::from_str(text)
         .map_err(|e| anyhow::anyhow!("{}: {}", path.display(), e.message().replace('\n', " ")))
-        .context("expected [[subject]] tables with id, image, labels and optional mask, landmarks")?;
-    Ok(m.subject)
+        .context(
+            "expected [[subject]] tables with id, image, labels and optional mask, landmarks, and optional \
+             [[pair]] tables with fixed, moving",
+        )?;
+    Ok((m.subject, m.pair))
+}
+
+/// One CSV record: its line number and its cells.
+pub type Record = (u64, Vec<String>);
+
+/// Reads a CSV table through the `csv` crate: a header row, then records; lines starting with
+/// `#` and blank lines are skipped, cells are trimmed, quoted cells may hold commas and
+/// newlines (RFC 4180). Returns the lower-cased header and the records with their line numbers.
+pub fn read_table(text: &str, path: &Path) -> anyhow::Result<(Vec<String>, Vec<Record>)> {
+    let mut rdr =
+        csv::ReaderBuilder::new().comment(Some(b'#')).trim(csv::Trim::All).flexible(true).from_reader(text.as_bytes());
+    let header: Vec<String> = rdr
+        .headers()
+        .with_context(|| format!("{}: not a CSV table", path.display()))?
+        .iter()
+        .map(|c| c.to_ascii_lowercase())
+        .collect();
+    if header.iter().all(|c| c.is_empty()) {
+        bail!("{}: empty table (expected a header line)", path.display());
+    }
+    let mut records = Vec::new();
+    for r in rdr.records() {
+        let r = r.with_context(|| format!("{}: not a CSV table", path.display()))?;
+        let line = r.position().map_or(0, |p| p.line());
+        if r.iter().all(str::is_empty) {
+            continue;
+        }
+        if r.len() != header.len() {
+            bail!("{}:{line}: {} cells, the header has {}", path.display(), r.len(), header.len());
+        }
+        records.push((line, r.iter().map(str::to_string).collect()));
+    }
+    Ok((header, records))
 }
 
 fn parse_csv(text: &str, path: &Path) -> anyhow::Result<Vec<Subject>> {
-    let mut lines = text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty() && !l.trim_start().starts_with('#'));
-    let (_, header) = lines.next().with_context(|| format!("{}: empty manifest", path.display()))?;
-    let cols: Vec<String> = header.split(',').map(|c| c.trim().to_ascii_lowercase()).collect();
+    let (cols, records) = read_table(text, path)?;
     let find = |name: &str| cols.iter().position(|c| c == name);
     let (Some(id), Some(image), Some(labels)) = (find("id"), find("image"), find("labels")) else {
         bail!(
@@ -141,22 +188,58 @@ fn parse_csv(text: &str, path: &Path) -> anyhow::Result<Vec<Subject>> {
         }
     }
     let (mask, landmarks) = (find("mask"), find("landmarks"));
-    lines
-        .map(|(n, line)| {
-            let cells: Vec<&str> = line.split(',').map(str::trim).collect();
-            if cells.len() != cols.len() {
-                bail!("{}:{}: {} cells, the header has {}", path.display(), n + 1, cells.len(), cols.len());
-            }
-            let opt = |c: Option<usize>| c.map(|c| cells[c]).filter(|s| !s.is_empty()).map(PathBuf::from);
-            Ok(Subject {
-                id: cells[id].to_string(),
-                image: PathBuf::from(cells[image]),
-                labels: PathBuf::from(cells[labels]),
+    Ok(records
+        .into_iter()
+        .map(|(_, cells)| {
+            let opt = |c: Option<usize>| c.map(|c| cells[c].as_str()).filter(|s| !s.is_empty()).map(PathBuf::from);
+            Subject {
+                id: cells[id].clone(),
+                image: PathBuf::from(&cells[image]),
+                labels: PathBuf::from(&cells[labels]),
                 mask: opt(mask),
                 landmarks: opt(landmarks),
-            })
+            }
         })
-        .collect()
+        .collect())
+}
+
+/// Reads a pair list: CSV with the columns `fixed,moving` (subject ids; a header line naming
+/// them first, other columns refused), one pair a line, in the order the pairs get their index.
+pub fn read_pair_list(path: &Path) -> anyhow::Result<Vec<NamedPair>> {
+    let text =
+        std::fs::read_to_string(path).with_context(|| format!("{}: cannot read the pair list", path.display()))?;
+    let (cols, records) = read_table(&text, path)?;
+    if cols != ["fixed", "moving"] {
+        bail!("{}: the header must be fixed,moving (subject ids), found {}", path.display(), cols.join(","));
+    }
+    Ok(records.into_iter().map(|(_, c)| NamedPair { fixed: c[0].clone(), moving: c[1].clone() }).collect())
+}
+
+/// The pairs of a pair list, by subject position, in list order (index = position in the
+/// list). Unknown ids, a subject paired with itself and a pair listed twice are errors
+/// (the reverse pair is a different pair).
+pub fn resolve_pairs(named: &[NamedPair], subjects: &[Subject], origin: &Path) -> anyhow::Result<Vec<Pair>> {
+    if named.is_empty() {
+        bail!("{}: the pair list is empty", origin.display());
+    }
+    let pos = |id: &str| {
+        subjects
+            .iter()
+            .position(|s| s.id == id)
+            .with_context(|| format!("{}: pair names subject {id:?}, which is not in the cohort", origin.display()))
+    };
+    let mut pairs: Vec<Pair> = Vec::with_capacity(named.len());
+    for (index, p) in named.iter().enumerate() {
+        let (fixed, moving) = (pos(&p.fixed)?, pos(&p.moving)?);
+        if fixed == moving {
+            bail!("{}: pair {} pairs subject {:?} with itself", origin.display(), index + 1, p.fixed);
+        }
+        if pairs.iter().any(|q| q.fixed == fixed && q.moving == moving) {
+            bail!("{}: pair {:?} → {:?} is listed twice", origin.display(), p.fixed, p.moving);
+        }
+        pairs.push(Pair { index, fixed, moving });
+    }
+    Ok(pairs)
 }
 
 fn check_subjects(subjects: &[Subject], origin: &Path) -> anyhow::Result<()> {
@@ -225,7 +308,8 @@ mod tests {
              [[subject]]\nid = \"b\"\nimage = \"b.nii.gz\"\nlabels = \"b_l.nii.gz\"\n",
         )
         .unwrap();
-        let t = read_manifest(&toml_path).unwrap();
+        let (t, pairs) = read_manifest(&toml_path).unwrap();
+        assert_eq!(pairs, None);
         assert_eq!(t[0].image, dir.path().join("a.nii.gz"));
         assert_eq!(t[0].labels, PathBuf::from("/x/a_l.nii.gz"));
         assert_eq!(t[0].mask, Some(dir.path().join("am.nii.gz")));
@@ -233,10 +317,44 @@ mod tests {
         let csv_path = dir.path().join("m.csv");
         std::fs::write(&csv_path, "id,image,labels,mask\na,a.nii.gz,/x/a_l.nii.gz,am.nii.gz\nb,b.nii.gz,b_l.nii.gz,\n")
             .unwrap();
-        assert_eq!(read_manifest(&csv_path).unwrap(), t);
+        assert_eq!(read_manifest(&csv_path).unwrap().0, t);
         std::fs::write(&csv_path, "id,image,labels\na,a.nii.gz,al.nii.gz\na,b.nii.gz,bl.nii.gz\n").unwrap();
         assert!(read_manifest(&csv_path).unwrap_err().to_string().contains("twice"));
         std::fs::write(&csv_path, "id,image,labels\na__b,a.nii.gz,al.nii.gz\nc,b.nii.gz,bl.nii.gz\n").unwrap();
         assert!(read_manifest(&csv_path).is_err());
+    }
+
+    #[test]
+    fn pair_lists_from_csv_and_toml() {
+        let dir = tempfile::tempdir().unwrap();
+        let m = dir.path().join("m.toml");
+        std::fs::write(
+            &m,
+            "[[subject]]\nid = \"a\"\nimage = \"a.nii.gz\"\nlabels = \"al.nii.gz\"\n\
+             [[subject]]\nid = \"b\"\nimage = \"b.nii.gz\"\nlabels = \"bl.nii.gz\"\n\
+             [[subject]]\nid = \"c\"\nimage = \"c.nii.gz\"\nlabels = \"cl.nii.gz\"\n\
+             [[pair]]\nfixed = \"c\"\nmoving = \"a\"\n[[pair]]\nfixed = \"a\"\nmoving = \"c\"\n",
+        )
+        .unwrap();
+        let (subjects, named) = read_manifest(&m).unwrap();
+        let pairs = resolve_pairs(&named.unwrap(), &subjects, &m).unwrap();
+        // Both directions of one pair, in list order.
+        assert_eq!(pairs, vec![Pair { index: 0, fixed: 2, moving: 0 }, Pair { index: 1, fixed: 0, moving: 2 }]);
+        let list = dir.path().join("pairs.csv");
+        std::fs::write(&list, "# test pairs\nfixed, moving\nb,a\n\nc,b\n").unwrap();
+        let named = read_pair_list(&list).unwrap();
+        assert_eq!(resolve_pairs(&named, &subjects, &list).unwrap()[1], Pair { index: 1, fixed: 2, moving: 1 });
+        for (text, says) in [
+            ("fixed,moving\nb,x\n", "\"x\""),
+            ("fixed,moving\nb,b\n", "itself"),
+            ("fixed,moving\na,b\na,b\n", "twice"),
+            ("moving,fixed\na,b\n", "header"),
+            ("fixed,moving\na,b,c\n", "3 cells"),
+            ("fixed,moving\n", "empty"),
+        ] {
+            std::fs::write(&list, text).unwrap();
+            let e = read_pair_list(&list).and_then(|n| resolve_pairs(&n, &subjects, &list)).unwrap_err().to_string();
+            assert!(e.contains(says) && e.contains("pairs.csv"), "{text:?}: {e}");
+        }
     }
 }
