@@ -357,4 +357,17 @@ mod tests {
             assert!(e.contains(says) && e.contains("pairs.csv"), "{text:?}: {e}");
         }
     }
+
+    #[test]
+    fn the_readme_examples_parse() {
+        let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../examples");
+        let (subjects, pairs) = read_manifest(&root.join("cohort.toml")).unwrap();
+        assert_eq!(subjects.len(), 2);
+        assert_eq!(subjects[0].landmarks, Some(root.join("scans/case01_points.csv")));
+        let pairs = resolve_pairs(&pairs.unwrap(), &subjects, &root).unwrap();
+        assert_eq!(pairs, vec![Pair { index: 0, fixed: 1, moving: 0 }]);
+        let list = read_pair_list(&root.join("test_pairs.csv")).unwrap();
+        assert_eq!(list.len(), 3);
+        assert_eq!(list[0], NamedPair { fixed: "subject_01".into(), moving: "subject_00".into() });
+    }
 }
