@@ -89,7 +89,7 @@ fn parse_header(path: &Path, bytes: &[u8]) -> Result<NpyHeader, IoError> {
         _ => {
             return Err(bad(
                 path,
-                format!("dtype {} is not float16/float32/float64", descr.split(',').next().unwrap_or("")),
+                format!("dtype {} is not float32, float64 or float16", descr.split(',').next().unwrap_or("")),
             ))
         }
     };
