@@ -81,28 +81,21 @@ pub fn resample_field(src: &crate::Field, target: &Grid) -> crate::Field {
     let shape = src.grid.shape();
     let comps = [src.component(0), src.component(1), src.component(2)];
     let mut out = crate::Field::zeros(target.clone());
-    let n = target.len();
     let [_, ny, nz] = target.shape();
-    let out_slice = out.data.as_slice_mut().expect("standard layout");
-    let (a, rest) = out_slice.split_at_mut(n);
-    let (b, c) = rest.split_at_mut(n);
-    let slab = ny * nz;
-    a.par_chunks_mut(slab).zip(b.par_chunks_mut(slab)).zip(c.par_chunks_mut(slab)).enumerate().for_each(
-        |(i, ((oa, ob), oc))| {
-            for j in 0..ny {
-                for k in 0..nz {
-                    let q = m.apply([i as f64, j as f64, k as f64]);
-                    let p = [q[0] as f32, q[1] as f32, q[2] as f32];
-                    let v = [0, 1, 2].map(|d| interp::trilinear(comps[d], shape, p, Border::Nearest) as f64);
-                    let w = [0, 1, 2].map(|r| (lin[r][0] * v[0] + lin[r][1] * v[1] + lin[r][2] * v[2]) as f32);
-                    let idx = j * nz + k;
-                    oa[idx] = w[0];
-                    ob[idx] = w[1];
-                    oc[idx] = w[2];
-                }
+    out.par_slabs_mut(|i, [oa, ob, oc]| {
+        for j in 0..ny {
+            for k in 0..nz {
+                let q = m.apply([i as f64, j as f64, k as f64]);
+                let p = [q[0] as f32, q[1] as f32, q[2] as f32];
+                let v = [0, 1, 2].map(|d| interp::trilinear(comps[d], shape, p, Border::Nearest) as f64);
+                let w = [0, 1, 2].map(|r| (lin[r][0] * v[0] + lin[r][1] * v[1] + lin[r][2] * v[2]) as f32);
+                let idx = j * nz + k;
+                oa[idx] = w[0];
+                ob[idx] = w[1];
+                oc[idx] = w[2];
             }
-        },
-    );
+        }
+    });
     out
 }
 

@@ -178,6 +178,17 @@ impl Field {
         [a, b, c]
     }
 
+    /// Runs `f(i, [x, y, z])` once for every `i` slab, in parallel over `i` (rayon): `x`, `y`,
+    /// `z` are the `ny·nz` values of the three components at that `i` (index `j·nz + k`). The one
+    /// way a field is filled slab by slab; see [`par_component_slabs_mut`].
+    pub fn par_slabs_mut<F>(&mut self, f: F)
+    where
+        F: Fn(usize, [&mut [f32]; 3]) + Send + Sync,
+    {
+        let shape = self.grid.shape();
+        par_component_slabs_mut(self.data.as_slice_mut().expect("standard layout"), shape, f);
+    }
+
     /// Component views as 3-D arrays.
     pub fn component_view(&self, d: usize) -> ndarray::ArrayView3<'_, f32> {
         self.data.index_axis(Axis(0), d)
@@ -202,9 +213,55 @@ impl Field {
     }
 }
 
+/// Splits `data`, laid out like a [`Field`]'s components (`(3, nx, ny, nz)` in standard order),
+/// into its three components and runs `f(i, [x, y, z])` for every `i` slab in parallel (rayon),
+/// where `x`, `y`, `z` are the `ny·nz` values of each component at that `i`. For buffers that
+/// are shaped like a field without being one (a gradient, a workspace).
+///
+/// # Panics
+/// When `data.len() != 3·nx·ny·nz`.
+#[track_caller]
+pub fn par_component_slabs_mut<F>(data: &mut [f32], shape: [usize; 3], f: F)
+where
+    F: Fn(usize, [&mut [f32]; 3]) + Send + Sync,
+{
+    use rayon::prelude::*;
+    let [nx, ny, nz] = shape;
+    let n = nx * ny * nz;
+    assert_eq!(data.len(), 3 * n, "a field-shaped buffer of shape {shape:?} holds 3·{n} values");
+    let plane = ny * nz;
+    if plane == 0 {
+        return;
+    }
+    let (a, rest) = data.split_at_mut(n);
+    let (b, c) = rest.split_at_mut(n);
+    a.par_chunks_mut(plane)
+        .zip(b.par_chunks_mut(plane))
+        .zip(c.par_chunks_mut(plane))
+        .enumerate()
+        .for_each(|(i, ((x, y), z))| f(i, [x, y, z]));
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn slabs_walk_every_component_value_once_at_its_index() {
+        // Each value written through its slab must land at [d, i, j, k] of the array.
+        let g = Grid::axis_aligned([5, 3, 4], [1.0; 3], [0.0; 3]);
+        let mut f = Field::zeros(g);
+        f.par_slabs_mut(|i, comps| {
+            for (d, c) in comps.into_iter().enumerate() {
+                for (t, v) in c.iter_mut().enumerate() {
+                    *v += (1000 * d + 100 * i + t) as f32;
+                }
+            }
+        });
+        for ((d, i, j, k), &v) in f.data.indexed_iter() {
+            assert_eq!(v, (1000 * d + 100 * i + j * 4 + k) as f32, "[{d}, {i}, {j}, {k}]");
+        }
+    }
     use crate::Affine;
 
     #[test]

@@ -13,9 +13,9 @@
 //! The **residual** `r(x) = |v(x) + u(x + v(x))|` in mm (world axes) measures how far the result
 //! is from an exact inverse; its maximum and mean over the grid are reported.
 
-use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
-use sinew_grid::{interp, Border, Field};
+use sinew_grid::Field;
+use sinew_transform::{invert_from, InvertStart};
 
 /// The result of [`invert_push_field`].
 #[derive(Clone, Debug)]
@@ -37,67 +37,13 @@ pub struct InversionReport {
     pub residual_mean_mm: f64,
 }
 
-/// Inverts the push field `u` into a pull field by `iterations` fixed-point steps (see the
-/// module documentation). Deterministic: each voxel is computed alone, sums are per `i` slab
-/// merged in order.
+/// Inverts the push field `u` into a pull field by `iterations` fixed-point steps from
+/// `v₀ = −u` (see the module documentation; the iteration is [`sinew_transform::invert_from`]).
+/// Deterministic: each voxel is computed alone, sums are per `i` slab merged in order.
 pub fn invert_push_field(u: &Field, iterations: usize) -> Inversion {
-    let grid = u.grid.clone();
-    let shape = grid.shape();
-    let mut v = u.clone();
-    v.data.mapv_inplace(|x| -x);
-    let mut next = v.clone();
-    for _ in 0..iterations {
-        step(u, &v, &mut next);
-        std::mem::swap(&mut v, &mut next);
-    }
-    // Residual: r = v(x) + u(x + v(x)) = v(x) − (the next iterate at x).
-    step(u, &v, &mut next);
-    let lin = grid.affine().linear();
-    let plane = shape[1] * shape[2];
-    let partial: Vec<(f64, f64)> = (0..shape[0])
-        .into_par_iter()
-        .map(|i| {
-            let (mut sum, mut max) = (0.0f64, 0.0f64);
-            for n in i * plane..(i + 1) * plane {
-                let r: [f64; 3] = std::array::from_fn(|d| (v.component(d)[n] - next.component(d)[n]) as f64);
-                let mm = (0..3)
-                    .map(|a| (lin[a][0] * r[0] + lin[a][1] * r[1] + lin[a][2] * r[2]).powi(2))
-                    .sum::<f64>()
-                    .sqrt();
-                sum += mm;
-                max = max.max(mm);
-            }
-            (sum, max)
-        })
-        .collect();
-    let sum: f64 = partial.iter().map(|p| p.0).sum();
-    let max = partial.iter().map(|p| p.1).fold(0.0, f64::max);
-    Inversion {
-        field: v,
-        report: InversionReport { iterations, residual_max_mm: max, residual_mean_mm: sum / grid.len() as f64 },
-    }
-}
-
-/// `out(x) = −u(x + v(x))` at every voxel.
-fn step(u: &Field, v: &Field, out: &mut Field) {
-    let shape = u.grid.shape();
-    let plane = shape[1] * shape[2];
-    let n = u.grid.len();
-    let (vx, vy, vz) = (v.component(0), v.component(1), v.component(2));
-    let [ox, oy, oz] = out.components_mut();
-    ox.par_chunks_mut(plane).zip(oy.par_chunks_mut(plane)).zip(oz.par_chunks_mut(plane)).enumerate().for_each(
-        |(i, ((sx, sy), sz))| {
-            for t in 0..plane {
-                let m = i * plane + t;
-                debug_assert!(m < n);
-                let (j, k) = (t / shape[2], t % shape[2]);
-                let p = [i as f32 + vx[m], j as f32 + vy[m], k as f32 + vz[m]];
-                sx[t] = -interp::trilinear(u.component(0), shape, p, Border::Nearest);
-                sy[t] = -interp::trilinear(u.component(1), shape, p, Border::Nearest);
-                sz[t] = -interp::trilinear(u.component(2), shape, p, Border::Nearest);
-            }
-        },
-    );
+    let inv = invert_from(u, iterations, InvertStart::Negated);
+    let (mean, max) = inv.residual_mm();
+    Inversion { field: inv.field, report: InversionReport { iterations, residual_max_mm: max, residual_mean_mm: mean } }
 }
 
 #[cfg(test)]

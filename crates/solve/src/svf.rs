@@ -7,7 +7,6 @@
 //! identity and invertible, and so is their composition: the result is free of folds up
 //! to interpolation error.
 
-use rayon::prelude::*;
 use sinew_grid::{interp, Border, Field};
 
 /// Number of squarings `K` so that `max|v| / 2^K ≤ 0.5` voxel (at least 4, at most 12).
@@ -40,23 +39,19 @@ fn compose_self(src: &Field, out: &mut Field) {
     let shape = src.grid.shape();
     let [_, ny, nz] = shape;
     let comps = [src.component(0), src.component(1), src.component(2)];
-    let slab = ny * nz;
-    let [a, b, c] = out.components_mut();
-    a.par_chunks_mut(slab).zip(b.par_chunks_mut(slab)).zip(c.par_chunks_mut(slab)).enumerate().for_each(
-        |(i, ((oa, ob), oc))| {
-            for j in 0..ny {
-                for k in 0..nz {
-                    let idx = (i * ny + j) * nz + k;
-                    let u = [comps[0][idx], comps[1][idx], comps[2][idx]];
-                    let p = [i as f32 + u[0], j as f32 + u[1], k as f32 + u[2]];
-                    let l = j * nz + k;
-                    oa[l] = u[0] + interp::trilinear(comps[0], shape, p, Border::Nearest);
-                    ob[l] = u[1] + interp::trilinear(comps[1], shape, p, Border::Nearest);
-                    oc[l] = u[2] + interp::trilinear(comps[2], shape, p, Border::Nearest);
-                }
+    out.par_slabs_mut(|i, [oa, ob, oc]| {
+        for j in 0..ny {
+            for k in 0..nz {
+                let idx = (i * ny + j) * nz + k;
+                let u = [comps[0][idx], comps[1][idx], comps[2][idx]];
+                let p = [i as f32 + u[0], j as f32 + u[1], k as f32 + u[2]];
+                let l = j * nz + k;
+                oa[l] = u[0] + interp::trilinear(comps[0], shape, p, Border::Nearest);
+                ob[l] = u[1] + interp::trilinear(comps[1], shape, p, Border::Nearest);
+                oc[l] = u[2] + interp::trilinear(comps[2], shape, p, Border::Nearest);
             }
-        },
-    );
+        }
+    });
 }
 
 #[cfg(test)]

@@ -12,7 +12,6 @@
 //! grid) and its vector is carried back with the grids' linear parts. `C` lives on `first`'s
 //! grid.
 
-use rayon::prelude::*;
 use sinew_grid::interp::trilinear;
 use sinew_grid::resample::voxel_map;
 use sinew_grid::{Border, Field};
@@ -27,27 +26,21 @@ pub fn compose(first: &Field, second: &Field) -> Field {
     let comps_b = [second.component(0), second.component(1), second.component(2)];
     let mut out = Field::zeros(ga.clone());
     let [_, ny, nz] = ga.shape();
-    let n = ga.len();
     let (a0, a1, a2) = (first.component(0), first.component(1), first.component(2));
-    let data = out.data.as_slice_mut().expect("standard layout");
-    let (o0, rest) = data.split_at_mut(n);
-    let (o1, o2) = rest.split_at_mut(n);
     let plane = ny * nz;
-    o0.par_chunks_mut(plane).zip(o1.par_chunks_mut(plane)).zip(o2.par_chunks_mut(plane)).enumerate().for_each(
-        |(i, ((c0, c1), c2))| {
-            for idx in 0..plane {
-                let v = i * plane + idx;
-                let ua = [a0[v] as f64, a1[v] as f64, a2[v] as f64];
-                let p = [i as f64 + ua[0], (idx / nz) as f64 + ua[1], (idx % nz) as f64 + ua[2]];
-                let q = to_b.apply(p);
-                let qf = [q[0] as f32, q[1] as f32, q[2] as f32];
-                let ub = [0, 1, 2].map(|d| trilinear(comps_b[d], shape_b, qf, Border::Nearest) as f64);
-                let w = [0, 1, 2].map(|r| back[r][0] * ub[0] + back[r][1] * ub[1] + back[r][2] * ub[2]);
-                c0[idx] = (ua[0] + w[0]) as f32;
-                c1[idx] = (ua[1] + w[1]) as f32;
-                c2[idx] = (ua[2] + w[2]) as f32;
-            }
-        },
-    );
+    out.par_slabs_mut(|i, [c0, c1, c2]| {
+        for idx in 0..plane {
+            let v = i * plane + idx;
+            let ua = [a0[v] as f64, a1[v] as f64, a2[v] as f64];
+            let p = [i as f64 + ua[0], (idx / nz) as f64 + ua[1], (idx % nz) as f64 + ua[2]];
+            let q = to_b.apply(p);
+            let qf = [q[0] as f32, q[1] as f32, q[2] as f32];
+            let ub = [0, 1, 2].map(|d| trilinear(comps_b[d], shape_b, qf, Border::Nearest) as f64);
+            let w = [0, 1, 2].map(|r| back[r][0] * ub[0] + back[r][1] * ub[1] + back[r][2] * ub[2]);
+            c0[idx] = (ua[0] + w[0]) as f32;
+            c1[idx] = (ua[1] + w[1]) as f32;
+            c2[idx] = (ua[2] + w[2]) as f32;
+        }
+    });
     out
 }

@@ -14,6 +14,6 @@ pub mod warp;
 
 pub use compose::compose;
 pub use error::TransformError;
-pub use invert::{invert, InvertReport};
+pub use invert::{invert, invert_from, Inverse, InvertReport, InvertStart};
 pub use jacobian::{jacobian_determinant, jacobian_stats, JacobianStats};
 pub use warp::{warp_image, warp_image_from, warp_image_into, warp_labels, warp_labels_from};
