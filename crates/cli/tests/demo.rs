@@ -94,3 +94,50 @@ fn rejects_a_zero_subject_count() {
     assert!(!out.status.success());
     assert!(!tmp.path().join("x").exists());
 }
+
+#[test]
+fn variation_and_noise_flags_reach_the_generator() {
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path().join("hard");
+    let out = sinew(
+        &["--data-only", "--small", "--subjects", "1", "--seed", "11", "--variation", "2", "--noise-hu", "20"],
+        &dir,
+    );
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    // The files are exactly the generator's subject under those parameters …
+    let mut p = PhantomParams::small();
+    p.variation = 2.0;
+    p.noise_hu = 20.0;
+    let s = generate(11, 0, &p);
+    let img = sinew_io::read_image(&dir.join("subject_00_image.nii.gz")).unwrap();
+    let lab = sinew_io::read_labels(&dir.join("subject_00_labels.nii.gz")).unwrap();
+    assert_eq!(img.data, s.image.data);
+    assert_eq!(lab.data, s.labels.data);
+    // … and differ from the demo cohort's subject of the same seed.
+    assert_ne!(img.data, generate(11, 0, &PhantomParams::small()).image.data);
+    let info: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.join("cohort.json")).unwrap()).unwrap();
+    assert_eq!(info["variation"], 2.0);
+    assert_eq!(info["noise_hu"], 20.0);
+
+    // The same folder with another variation or noise is refused, not mixed.
+    for args in [["--variation", "1"], ["--noise-hu", "12"]] {
+        let mut a = vec!["--data-only", "--small", "--subjects", "1", "--seed", "11"];
+        a.extend(args);
+        if args[0] != "--variation" {
+            a.extend(["--variation", "2"]);
+        }
+        let other = sinew(&a, &dir);
+        assert_eq!(other.status.code(), Some(2), "{a:?}");
+        assert!(text(&other.stderr).contains("refusing to mix"), "{}", text(&other.stderr));
+    }
+
+    // Out-of-range values are usage errors and write nothing.
+    for bad in [["--variation", "-1"], ["--noise-hu", "nan"]] {
+        let mut a = vec!["--data-only", "--small", "--subjects", "1"];
+        a.extend(bad);
+        let o = sinew(&a, &tmp.path().join("bad"));
+        assert_eq!(o.status.code(), Some(2), "{bad:?}");
+        assert!(!tmp.path().join("bad").exists());
+    }
+}

@@ -38,6 +38,15 @@ pub struct DemoArgs {
     #[arg(long)]
     pub small: bool,
 
+    /// Scale of the differences between subjects (anatomy, position, deformation and tissue
+    /// contrast): 1 is the demo cohort, 2 draws subjects that differ twice as much.
+    #[arg(long, default_value_t = 1.0, value_name = "V", value_parser = parse_variation)]
+    pub variation: f64,
+
+    /// Standard deviation of the added Gaussian noise in HU (default: 12, the demo cohort's).
+    #[arg(long, value_name = "HU", value_parser = parse_noise_hu)]
+    pub noise_hu: Option<f32>,
+
     /// Only write the cohort; do not register, score or report.
     #[arg(long)]
     pub data_only: bool,
@@ -75,7 +84,32 @@ struct CohortInfo {
     shape: [usize; 3],
     spacing_mm: [f64; 3],
     noise_hu: f32,
+    /// Absent in folders written before `--variation` existed: those hold variation 1.
+    #[serde(default = "one")]
+    variation: f64,
     subjects: Vec<SubjectPaths>,
+}
+
+fn one() -> f64 {
+    1.0
+}
+
+/// `--variation`: a finite number in [0, 10].
+fn parse_variation(s: &str) -> Result<f64, String> {
+    let v: f64 = s.parse().map_err(|_| format!("'{s}' is not a number"))?;
+    if !(0.0..=10.0).contains(&v) {
+        return Err(format!("{v} is outside 0..=10"));
+    }
+    Ok(v)
+}
+
+/// `--noise-hu`: a finite number in [0, 1000] HU.
+fn parse_noise_hu(s: &str) -> Result<f32, String> {
+    let v: f32 = s.parse().map_err(|_| format!("'{s}' is not a number"))?;
+    if !(0.0..=1000.0).contains(&v) {
+        return Err(format!("{v} HU is outside 0..=1000"));
+    }
+    Ok(v)
 }
 
 impl CohortInfo {
@@ -86,6 +120,7 @@ impl CohortInfo {
             && self.shape == other.shape
             && self.spacing_mm == other.spacing_mm
             && self.noise_hu == other.noise_hu
+            && self.variation == other.variation
     }
 }
 
@@ -130,13 +165,14 @@ pub fn run(args: DemoArgs) -> Result<()> {
     Ok(())
 }
 
-/// The grid and noise used for `args`.
+/// The grid, noise and variation used for `args`.
 pub fn params(args: &DemoArgs) -> PhantomParams {
-    if args.small {
-        PhantomParams::small()
-    } else {
-        PhantomParams::default()
+    let mut p = if args.small { PhantomParams::small() } else { PhantomParams::default() };
+    p.variation = args.variation;
+    if let Some(n) = args.noise_hu {
+        p.noise_hu = n;
     }
+    p
 }
 
 /// `labels.json`: `{"1": "liver", …}` in ascending label order.
@@ -170,6 +206,7 @@ pub fn write_cohort(args: &DemoArgs) -> Result<Vec<SubjectPaths>> {
         shape: p.shape,
         spacing_mm: p.spacing,
         noise_hu: p.noise_hu,
+        variation: p.variation,
         subjects: subjects.clone(),
     };
     let info_path = dir.join("cohort.json");
@@ -181,15 +218,19 @@ pub fn write_cohort(args: &DemoArgs) -> Result<Vec<SubjectPaths>> {
         })?;
         if !old.same_settings(&info) {
             bail!(
-                "{}: holds a cohort of seed {} on a {:?} grid of {:?} mm; refusing to mix it with seed {} on {:?} of {:?} mm \
-                 (choose another --out)",
+                "{}: holds a cohort of seed {} on a {:?} grid of {:?} mm (noise {} HU, variation {}); refusing to mix it \
+                 with seed {} on {:?} of {:?} mm (noise {} HU, variation {}) (choose another --out)",
                 dir.display(),
                 old.seed,
                 old.shape,
                 old.spacing_mm,
+                old.noise_hu,
+                old.variation,
                 info.seed,
                 info.shape,
-                info.spacing_mm
+                info.spacing_mm,
+                info.noise_hu,
+                info.variation
             );
         }
     }
