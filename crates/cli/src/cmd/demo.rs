@@ -3,8 +3,9 @@
 //! Layout of `--out DIR`:
 //! - `subject_NN_image.nii.gz` (float32, HU) and `subject_NN_labels.nii.gz` (uint8) per subject;
 //! - `labels.json`: label value → structure name;
-//! - `cohort.json`: seed, grid and the subject files, written before the subjects so that a
-//!   rerun into the same folder with other settings is refused instead of mixing cohorts.
+//! - `cohort.json`: seed, grid, noise, variation and the subject files, written before the
+//!   subjects so that a rerun into the same folder with other settings is refused instead of
+//!   mixing cohorts.
 //!
 //! A subject whose two files already exist, read back and sit on the expected grid is
 //! skipped, so an interrupted run resumes where it stopped. Every file is written to a
