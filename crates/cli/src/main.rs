@@ -87,7 +87,58 @@ fn dispatch(cli: Cli) -> anyhow::Result<()> {
 
 #[cfg(test)]
 mod tests {
-    use clap::CommandFactory;
+    use clap::{CommandFactory, Parser};
+
+    /// Every `sinew …` line in the Examples of every command's long help (lines ending in `\`
+    /// continue on the next; ` # comment` tails dropped), with every subcommand's help.
+    fn help_examples() -> Vec<(String, Vec<String>)> {
+        fn walk(cmd: &mut clap::Command, path: &str, out: &mut Vec<(String, Vec<String>)>) {
+            let help = cmd.render_long_help().to_string();
+            let mut lines = help.lines().map(str::trim).peekable();
+            while let Some(line) = lines.next() {
+                if !line.starts_with("sinew ") {
+                    continue;
+                }
+                let mut text = line.to_string();
+                while text.ends_with('\\') {
+                    text.pop();
+                    text.push(' ');
+                    text.push_str(lines.next().unwrap_or_else(|| panic!("{path}: {line:?} continues past the help")));
+                }
+                let text = text.split(" # ").next().unwrap_or("").trim().to_string();
+                out.push((format!("{path}: {text}"), text.split_whitespace().map(String::from).collect()));
+            }
+            for sub in cmd.get_subcommands_mut() {
+                let name = format!("{path} {}", sub.get_name());
+                walk(sub, &name, out);
+            }
+        }
+        let mut out = Vec::new();
+        walk(&mut super::Cli::command(), "sinew", &mut out);
+        out
+    }
+
+    #[test]
+    fn every_help_example_parses_and_its_parameters_are_accepted() {
+        let examples = help_examples();
+        // Every command with options documents examples (a floor, so that a help text change
+        // that loses them fails here).
+        assert!(examples.len() >= 20, "{} examples", examples.len());
+        for (what, words) in &examples {
+            let cli = super::Cli::try_parse_from(words).unwrap_or_else(|e| panic!("{what}\n{e}"));
+            // Beyond the syntax: the registration parameters the example asks for must be
+            // valid (a per-level list must match the level count; config files are not read).
+            match cli.command {
+                super::Command::Register(a) if a.config.is_none() => {
+                    a.params().unwrap_or_else(|e| panic!("{what}: {e:#}"));
+                }
+                super::Command::Cohort(a) if a.config.is_none() && a.action.is_none() => {
+                    crate::cmd::cohort::register_params(&a).unwrap_or_else(|e| panic!("{what}: {e:#}"));
+                }
+                _ => {}
+            }
+        }
+    }
 
     #[test]
     fn cli_definition_is_consistent() {

@@ -219,7 +219,7 @@ for m in summ["methods"]:
             continue
         d = np.array([float(r["dice"]) for r in rows if r["method"] == m["method"] and int(r["label"]) == l["label"] and r["dice"]])
         s = l["dice"]
-        for got, want in [(s["mean"], d.mean()), (s["std"], d.std(ddof=1)), (s["median"], np.median(d)), (s["p30"], np.percentile(d, 30))]:
+        for got, want in [(s["mean"], d.mean()), (s["std"], d.std(ddof=1)), (s["median"], np.median(d)), (s["robust"], np.percentile(d, s["robust_percentile"]))]:
             assert abs(got - want) < 1e-12, (m["method"], l["label"], got, want)
         h = [float(r["hd95_mm"]) for r in rows if r["method"] == m["method"] and int(r["label"]) == l["label"] and r["hd95_mm"]]
         assert abs(l["hd95_mean_mm"] - np.mean(h)) < 1e-9

@@ -220,19 +220,14 @@ fn find_files(dir: &Path, name: &str, depth: usize) -> Vec<PathBuf> {
     out
 }
 
-/// The sheet whose folder name contains both ids in order (the pair's own folder) and whose
-/// path below `dir` names the method; for the baseline `sinew` (whose `register` writes the
-/// sheets) a sheet in a folder without a method name is taken too.
+/// The sheet in the pair's own folder, named exactly `<fixed>__<moving>` (so that pair
+/// `case1__case2` never opens `case10__case2`'s sheet), whose path below `dir` names the
+/// method; for the baseline `sinew` (whose `register` writes the sheets) a sheet in a folder
+/// without a method name is taken too.
 fn find_sheet(sheets: &[PathBuf], dir: &Path, method: &str, fixed: &str, moving: &str) -> Option<PathBuf> {
-    let matches: Vec<&PathBuf> = sheets
-        .iter()
-        .filter(|p| {
-            p.parent()
-                .and_then(|d| d.file_name())
-                .map(|n| n.to_string_lossy())
-                .is_some_and(|n| n.contains(fixed) && n.contains(moving) && n.find(fixed) < n.find(moving))
-        })
-        .collect();
+    let folder = format!("{fixed}__{moving}");
+    let matches: Vec<&PathBuf> =
+        sheets.iter().filter(|p| p.parent().and_then(|d| d.file_name()).is_some_and(|n| *n == *folder)).collect();
     let named = |p: &PathBuf| p.strip_prefix(dir).unwrap_or(p).components().any(|c| c.as_os_str() == method);
     let fallback = if method == "sinew" { matches.first().copied() } else { None };
     matches.iter().copied().find(|p| named(p)).or(fallback).cloned()
@@ -331,11 +326,8 @@ impl BoxStats {
         assert!(!v.is_empty(), "box statistics of an empty sample");
         let mut s = v.to_vec();
         s.sort_by(f64::total_cmp);
-        let q = |p: f64| {
-            let h = (s.len() - 1) as f64 * p;
-            let (lo, hi) = (h.floor() as usize, h.ceil() as usize);
-            s[lo] + (h - lo as f64) * (s[hi] - s[lo])
-        };
+        // Quartiles by the one percentile definition of `sinew_score::stats`.
+        let q = |p: f64| sinew_score::percentile_linear(&s, 100.0 * p);
         let (q1, median, q3) = (q(0.25), q(0.5), q(0.75));
         let (f_lo, f_hi) = (q1 - 1.5 * (q3 - q1), q3 + 1.5 * (q3 - q1));
         let inside: Vec<f64> = s.iter().copied().filter(|x| *x >= f_lo && *x <= f_hi).collect();
@@ -433,13 +425,29 @@ fn jacobian_chart<DB: DrawingBackend>(area: &DrawingArea<DB, Shift>, c: &Cohort,
     let mut chart = ChartBuilder::on(area)
         .caption(method, ("sans-serif", 16))
         .margin(8)
-        .x_label_area_size(34)
-        .y_label_area_size(48)
+        .margin_right(16)
+        .x_label_area_size(44)
+        .y_label_area_size(62)
         .build_cartesian_2d(0.0..xmax, 0.0..ymax)
         .map_err(&err)?;
+    // Few ticks with short labels, so that neighbouring labels and the axis titles never touch.
+    let short = |v: &f64| {
+        let a = v.abs();
+        if a == 0.0 {
+            "0".to_string()
+        } else if a >= 0.1 {
+            format!("{v:.2}")
+        } else {
+            format!("{v:.0e}")
+        }
+    };
     chart
         .configure_mesh()
-        .x_desc("folding (% of voxels, det ≤ 0)")
+        .x_labels(4)
+        .y_labels(5)
+        .x_label_formatter(&short)
+        .y_label_formatter(&short)
+        .x_desc("folding (% voxels, det ≤ 0)")
         .y_desc("SDlogJ")
         .label_style(("sans-serif", 11))
         .axis_desc_style(("sans-serif", 12))
@@ -466,6 +474,33 @@ mod tests {
         // Even count: percentile([1, 2, 3, 4], 50) = 2.5, 25th = 1.75.
         let b = BoxStats::new(&[1.0, 2.0, 3.0, 4.0]);
         assert_eq!((b.q1, b.median, b.q3), (1.75, 2.5, 3.25));
+    }
+
+    #[test]
+    fn report_statistics_are_the_summary_definition() {
+        // np.std([1, 2, 3, 4], ddof=1) = sqrt(5/3) (sample), not the population sqrt(5/4).
+        let (m, sd, med) = mean_sd_median(&[4.0, 1.0, 3.0, 2.0]);
+        assert_eq!((m, med), (Some(2.5), Some(2.5)));
+        assert!((sd.unwrap() - (5.0f64 / 3.0).sqrt()).abs() < 1e-15);
+        assert_eq!(mean_sd_median(&[0.7]), (Some(0.7), None, Some(0.7)));
+    }
+
+    #[test]
+    fn qc_sheets_are_matched_by_the_exact_pair_folder() {
+        let dir = Path::new("/r");
+        let sheets = vec![
+            PathBuf::from("/r/pairs/case10__case2/qc.png"),
+            PathBuf::from("/r/pairs/case1__case20/qc.png"),
+            PathBuf::from("/r/pairs/xcase1__case2/qc.png"),
+        ];
+        // None of them is case1__case2's, although each contains both ids in order.
+        assert_eq!(find_sheet(&sheets, dir, "sinew", "case1", "case2"), None);
+        let mut with = sheets.clone();
+        with.push(PathBuf::from("/r/pairs/case1__case2/qc.png"));
+        with.push(PathBuf::from("/r/methods/net/case1__case2/qc.png"));
+        assert_eq!(find_sheet(&with, dir, "sinew", "case1", "case2"), Some(with[3].clone()));
+        assert_eq!(find_sheet(&with, dir, "net", "case1", "case2"), Some(with[4].clone()));
+        assert_eq!(find_sheet(&with, dir, "net", "case10", "case2"), None);
     }
 }
 
@@ -547,18 +582,14 @@ fn fmt_opt(v: Option<f64>, digits: usize) -> String {
     v.map_or("–".into(), |x| format!("{x:.digits$}"))
 }
 
+/// Mean, standard deviation and median by the one definition of `sinew_score::stats` (the
+/// one summary.json and summary.md use): sample standard deviation (n − 1), undefined for
+/// one value; median by linear interpolation.
 fn mean_sd_median(v: &[f64]) -> (Option<f64>, Option<f64>, Option<f64>) {
-    if v.is_empty() {
-        return (None, None, None);
+    match sinew_score::Summary::of(v) {
+        Some(s) => (Some(s.mean), s.std, Some(s.median)),
+        None => (None, None, None),
     }
-    let n = v.len() as f64;
-    let mean = v.iter().sum::<f64>() / n;
-    let sd = (v.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / n).sqrt();
-    let mut s = v.to_vec();
-    s.sort_by(f64::total_cmp);
-    let mid = s.len() / 2;
-    let median = if s.len() % 2 == 1 { s[mid] } else { 0.5 * (s[mid - 1] + s[mid]) };
-    (Some(mean), Some(sd), Some(median))
 }
 
 const STYLE: &str = "body{font-family:DejaVu Sans,Helvetica,Arial,sans-serif;margin:24px auto;max-width:1280px;\
@@ -672,8 +703,8 @@ fn strip_xml_decl(svg: &str) -> &str {
 fn summary_table(w: &mut String, c: &Cohort) {
     let _ = writeln!(
         w,
-        "<h2>Summary per method and label</h2>\n<p class=\"muted\">Computed from scores.csv; sd is the population \
-         standard deviation over pairs.</p>\n<table class=\"summary\">\n<tr><th class=\"t\">method</th><th class=\"t\">label</th>\
+        "<h2>Summary per method and label</h2>\n<p class=\"muted\">Computed from scores.csv; sd is the sample \
+         standard deviation over pairs (n − 1), as in summary.md.</p>\n<table class=\"summary\">\n<tr><th class=\"t\">method</th><th class=\"t\">label</th>\
          <th>pairs</th><th>Dice mean</th><th>Dice sd</th><th>Dice median</th><th>HD95 mean (mm)</th>\
          <th>HD95 median (mm)</th></tr>"
     );

@@ -11,8 +11,9 @@
 //! - **Folding**: share of voxels with Jacobian determinant `det ≤ 0`; **SDlogJ**: population
 //!   standard deviation of `ln det` over the voxels with `det > 0` — voxels with `det ≤ 0` are
 //!   excluded and their count reported (`sinew_transform::jacobian_stats`).
-//! - **Summary** over a cohort: mean, sample standard deviation (`n − 1`), median and 30th
-//!   percentile with numpy's default linear interpolation ([`Summary`]).
+//! - **Summary** over a cohort: mean, sample standard deviation (`n − 1`), median and a
+//!   robustness percentile (default the 30th) with numpy's default linear interpolation
+//!   ([`Summary`]); the one definition used by summary.json, summary.md and the HTML report.
 //!
 //! Fields saved the way training code saves them (batch axis, reversed components,
 //! normalised coordinates, low resolution) are read by [`import::import_array`].
@@ -37,5 +38,5 @@ pub use error::ScoreError;
 pub use invert::{invert_push_field, Inversion, InversionReport};
 pub use landmarks::{landmark_errors, LandmarkErrors};
 pub use pair::{score_pair, JacobianScore, LabelScore, PairScore, Warp};
-pub use stats::{mean, percentile_linear, Summary};
+pub use stats::{mean, percentile_linear, Summary, ROBUST_PERCENTILE};
 pub use surface::{surface_distances, SurfaceDistances};

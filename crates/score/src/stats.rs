@@ -9,7 +9,10 @@
 //!   "Sample Quantiles in Statistical Packages", The American Statistician 50(4), 1996): with
 //!   the values sorted `x₀ ≤ … ≤ x_{n−1}`, `h = (n − 1)·p/100`,
 //!   `P_p = x_⌊h⌋ + (h − ⌊h⌋)·(x_⌊h⌋+1 − x_⌊h⌋)`.
-//! - **median** = `P_50`; **p30** = `P_30`.
+//! - **median** = `P_50`.
+//! - **robustness** = `P_q` for a chosen `q` (default 30): the value that the worst `q` % of
+//!   the pairs fall below and the other `100 − q` % reach; a method that fails on a few pairs
+//!   shows it here while its mean barely moves.
 
 use serde::{Deserialize, Serialize};
 
@@ -34,7 +37,7 @@ pub fn percentile_linear(sorted: &[f64], p: f64) -> f64 {
     sorted[lo] + (h - lo as f64) * (sorted[hi] - sorted[lo])
 }
 
-/// Mean, sample standard deviation, median and 30th percentile of a set of values.
+/// Mean, sample standard deviation, median and a low percentile (robustness) of a set of values.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Summary {
     /// Number of values.
@@ -45,17 +48,32 @@ pub struct Summary {
     pub std: Option<f64>,
     /// Median (`P_50`, linear interpolation).
     pub median: f64,
-    /// 30th percentile (`P_30`, linear interpolation).
-    pub p30: f64,
+    /// The percentile `q` of [`Summary::robust`] (0 ≤ q ≤ 100).
+    pub robust_percentile: f64,
+    /// Robustness: the `q`-th percentile (`P_q`, linear interpolation), default `P_30`.
+    pub robust: f64,
 }
 
+/// The default robustness percentile.
+pub const ROBUST_PERCENTILE: f64 = 30.0;
+
 impl Summary {
-    /// The summary of `values`, or `None` when there are none.
+    /// The summary of `values` with the default robustness percentile (30), or `None` when
+    /// there are none.
     ///
     /// # Panics
     /// When a value is not finite (callers leave undefined values out).
     #[track_caller]
     pub fn of(values: &[f64]) -> Option<Summary> {
+        Summary::with_percentile(values, ROBUST_PERCENTILE)
+    }
+
+    /// The summary of `values` with robustness percentile `q`, or `None` when there are none.
+    ///
+    /// # Panics
+    /// When a value is not finite or `q` is outside `[0, 100]` (callers check both).
+    #[track_caller]
+    pub fn with_percentile(values: &[f64], q: f64) -> Option<Summary> {
         assert!(values.iter().all(|v| v.is_finite()), "summary of non-finite values");
         if values.is_empty() {
             return None;
@@ -65,7 +83,14 @@ impl Summary {
         let std = (n > 1).then(|| (values.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (n - 1) as f64).sqrt());
         let mut sorted = values.to_vec();
         sorted.sort_by(f64::total_cmp);
-        Some(Summary { n, mean, std, median: percentile_linear(&sorted, 50.0), p30: percentile_linear(&sorted, 30.0) })
+        Some(Summary {
+            n,
+            mean,
+            std,
+            median: percentile_linear(&sorted, 50.0),
+            robust_percentile: q,
+            robust: percentile_linear(&sorted, q),
+        })
     }
 }
 
@@ -89,11 +114,15 @@ mod tests {
         let s = Summary::of(&x).unwrap();
         assert_eq!(s.n, 8);
         assert!((s.mean - 3.875).abs() < 1e-15);
-        assert!((s.p30 - 2.1).abs() < 1e-12);
+        assert!((s.robust - 2.1).abs() < 1e-12 && s.robust_percentile == 30.0);
+        // np.percentile(x, 10): h = 0.7 → 1 + 0.7·(1 − 1) = 1; np.percentile(x, 90): h = 6.3 →
+        // 6 + 0.3·(9 − 6) = 6.9.
+        assert_eq!(Summary::with_percentile(&x, 10.0).unwrap().robust, 1.0);
+        assert!((Summary::with_percentile(&x, 90.0).unwrap().robust - 6.9).abs() < 1e-12);
         assert!((s.median - 3.5).abs() < 1e-15);
         assert!((s.std.unwrap() - (52.875f64 / 7.0).sqrt()).abs() < 1e-12);
         let one = Summary::of(&[0.7]).unwrap();
-        assert_eq!((one.std, one.median, one.p30), (None, 0.7, 0.7));
+        assert_eq!((one.std, one.median, one.robust), (None, 0.7, 0.7));
         assert_eq!(Summary::of(&[]), None);
         // endpoints: P_0 = min, P_100 = max
         assert_eq!(percentile_linear(&[1.0, 2.0, 10.0], 100.0), 10.0);

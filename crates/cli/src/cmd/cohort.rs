@@ -59,7 +59,8 @@ pub struct CohortArgs {
     /// A TOML file of parameters applied over the preset (as for `sinew register`).
     #[arg(long, value_name = "TOML")]
     pub config: Option<PathBuf>,
-    /// Iterations per optimised level, coarsest first, e.g. `40,20`.
+    /// Iterations per optimised level, coarsest first, one number per level (e.g. `40,30,20,10`
+    /// for the 4 levels of the presets).
     #[arg(long, value_delimiter = ',')]
     pub iterations: Option<Vec<usize>>,
     /// Diffeomorphic registration (scaling and squaring of a velocity field).
@@ -89,6 +90,10 @@ pub struct CohortArgs {
     pub runtimes: Option<PathBuf>,
     #[command(flatten)]
     pub field_format: FieldFormat,
+    /// The robustness column of the summaries: the Q-th percentile of Dice over the pairs
+    /// (the Dice the worst Q % of pairs fall below).
+    #[arg(long, value_name = "Q", default_value_t = sinew_score::ROBUST_PERCENTILE, value_parser = percent)]
+    pub robust_percentile: f64,
     /// Print the pairs of this run (index, fixed, moving) and stop.
     #[arg(long)]
     pub list: bool,
@@ -113,6 +118,17 @@ pub struct MergeArgs {
     /// Where to write the joined tables (default: the first input folder).
     #[arg(long, short = 'o', value_name = "DIR")]
     pub out: Option<PathBuf>,
+    /// The robustness column of the summaries: the Q-th percentile of Dice over the pairs.
+    #[arg(long, value_name = "Q", default_value_t = sinew_score::ROBUST_PERCENTILE, value_parser = percent)]
+    pub robust_percentile: f64,
+}
+
+/// Parses a percentile 0..=100.
+fn percent(s: &str) -> Result<f64, String> {
+    s.parse::<f64>()
+        .ok()
+        .filter(|q| (0.0..=100.0).contains(q))
+        .ok_or_else(|| format!("{s:?}: expected a percentile from 0 to 100"))
 }
 
 const COHORT_HELP: &str = "Examples:
@@ -120,8 +136,8 @@ const COHORT_HELP: &str = "Examples:
   sinew cohort --all-pairs demo --out runs/demo --preset fast
   sinew cohort --manifest cohort.toml --out runs/c --jobs 2
   sinew cohort --manifest cohort.toml --pairs test_pairs.csv --out runs/c
-  sinew cohort --all-pairs demo --out runs/demo --method mynet --fields mynet_fields --units voxel \\
-      --runtimes mynet_times.csv
+  sinew cohort --all-pairs demo --out runs/demo --method mynet --fields mynet_fields \\
+      --units voxel --runtimes mynet_times.csv
   sinew cohort --all-pairs demo --out runs/s3 --shard 3/8      # one job of an array of 8
   sinew cohort merge runs/s1 runs/s2 runs/s3 --out runs/all
 
@@ -225,7 +241,7 @@ pub fn run(args: CohortArgs) -> anyhow::Result<()> {
     }
     sinew_io::atomic::write_bytes_atomic(&table_path, table::to_csv(&rows).as_bytes())?;
     if args.shard.is_none() {
-        table::write_summaries(&out, &rows)?;
+        table::write_summaries(&out, &rows, args.robust_percentile)?;
     }
     let done = outcomes.iter().filter(|(_, r)| matches!(r, Ok(Outcome::Done))).count();
     let skipped = outcomes.iter().filter(|(_, r)| matches!(r, Ok(Outcome::Skipped))).count();
@@ -280,7 +296,7 @@ struct Ctx<'a> {
 }
 
 /// The registration parameters (none when scoring another method).
-fn register_params(args: &CohortArgs) -> anyhow::Result<Option<sinew_solve::RegParams>> {
+pub(crate) fn register_params(args: &CohortArgs) -> anyhow::Result<Option<sinew_solve::RegParams>> {
     if args.method.is_some() {
         return Ok(None);
     }
@@ -573,7 +589,7 @@ fn merge(m: &MergeArgs) -> anyhow::Result<()> {
         sinew_io::atomic::ensure_not_input(&out.join(name), &files)?;
     }
     sinew_io::atomic::write_bytes_atomic(&out.join("scores.csv"), table::to_csv(&rows).as_bytes())?;
-    table::write_summaries(&out, &rows)?;
+    table::write_summaries(&out, &rows, m.robust_percentile)?;
     eprintln!("merged {} tables, {} rows into {}", files.len(), rows.len(), out.join("scores.csv").display());
     Ok(())
 }

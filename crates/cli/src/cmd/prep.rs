@@ -43,7 +43,8 @@ folder X_labels.nii.gz goes with X_image.nii.gz (else X.nii.gz).
 Examples:
   sinew prep scans/ --out prepped/ --recipe examples/prep_recipe.toml
   sinew prep a.nii.gz b.nii.gz --labels a_seg.nii.gz b_seg.nii.gz --out prepped/ \\
-      --orient RAS --spacing 2,2,2 --crop-pad 144,112,192 --centre body --window=-1000,1500 --scale unit")]
+      --orient RAS --spacing 2,2,2 --crop-pad 144,112,192 \\
+      --centre body --window=-1000,1500 --scale unit")]
 pub struct PrepArgs {
     /// Scans to prepare: NIfTI files or folders of them.
     #[arg(required = true, value_name = "IN")]

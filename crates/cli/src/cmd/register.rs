@@ -71,7 +71,8 @@ pub struct RegisterArgs {
     /// Diffusion weight λ (smoothness; larger = smoother field).
     #[arg(long)]
     pub lambda: Option<f32>,
-    /// Iterations per optimised level, coarsest first, e.g. `80,60,40`.
+    /// Iterations per optimised level, coarsest first, one number per level (e.g. `80,60,40,20`
+    /// for the 4 levels of the presets).
     #[arg(long, value_delimiter = ',')]
     pub iterations: Option<Vec<usize>>,
     /// Number of pyramid levels.

@@ -57,11 +57,13 @@ pub struct ScoreArgs {
 }
 
 const SCORE_HELP: &str = "Examples:
-  sinew score --fixed-labels f_labels.nii.gz --moving-labels m_labels.nii.gz --field out/field.nii.gz
-  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field net.npy --layout channel-first
-  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field flow.npz --channel-order kji \\
-      --units norm-edges --values positions
-  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field fwd.nii.gz --direction push --csv
+  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field out/field.nii.gz
+  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field net.npy \\
+      --layout channel-first
+  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field flow.npz \\
+      --npz-key flow --channel-order kji --units norm-edges --values positions
+  sinew score --fixed-labels f.nii.gz --moving-labels m.nii.gz --field fwd.nii.gz \\
+      --direction push --csv
 
 Fields: sinew's convention is a pull field on the fixed grid, warped(x) = moving(x + u(x)).
 NIfTI fields are read in the units their header records (sinew writes it), else --units
@@ -495,15 +497,16 @@ pub const SCORE_CSV_HEADER: &str =
     "label,name,dice_before,dice,hd95_mm,hd_mm,assd_mm,folding,sdlogj,jac_min,jac_max,landmark_mean_mm";
 
 /// One CSV row per label; the pair-level figures (Jacobian, landmarks) repeat on each row.
+/// Written by the `csv` crate (a label name holding a comma, quote or line break is quoted).
 fn csv_rows(r: &PairResult, names: &BTreeMap<u16, String>) -> String {
     let j = r.score.jacobian.as_ref();
-    let mut s = String::from(SCORE_CSV_HEADER);
-    s.push('\n');
+    let mut w = csv::WriterBuilder::new().terminator(csv::Terminator::Any(b'\n')).from_writer(Vec::new());
+    w.write_record(SCORE_CSV_HEADER.split(',')).expect("writing to memory");
     for l in &r.score.labels {
         let surf = l.surface.as_ref();
         let cells = [
             l.label.to_string(),
-            csv_text(names.get(&l.label).map(String::as_str).unwrap_or("")),
+            names.get(&l.label).cloned().unwrap_or_default(),
             cell(l.dice_before),
             cell(l.dice),
             cell(surf.map(|x| x.hd95_mm)),
@@ -515,17 +518,7 @@ fn csv_rows(r: &PairResult, names: &BTreeMap<u16, String>) -> String {
             cell(j.and_then(|j| j.max)),
             cell(r.landmarks.as_ref().map(|l| l.mean_mm)),
         ];
-        s.push_str(&cells.join(","));
-        s.push('\n');
+        w.write_record(&cells).expect("writing to memory");
     }
-    s
-}
-
-/// A text cell: quoted when it holds a comma, quote or newline (RFC 4180).
-pub fn csv_text(t: &str) -> String {
-    if t.contains([',', '"', '\n', '\r']) {
-        format!("\"{}\"", t.replace('"', "\"\""))
-    } else {
-        t.to_string()
-    }
+    String::from_utf8(w.into_inner().expect("writing to memory")).expect("cells are UTF-8")
 }
