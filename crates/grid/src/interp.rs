@@ -29,7 +29,9 @@ pub fn trilinear(data: &[f32], shape: [usize; 3], p: [f32; 3], border: Border) -
     let fz = p[2].floor();
     let (tx, ty, tz) = (p[0] - fx, p[1] - fy, p[2] - fz);
     let (x0, y0, z0) = (fx as isize, fy as isize, fz as isize);
-    if x0 >= 0 && y0 >= 0 && z0 >= 0 && x0 + 1 < nx && y0 + 1 < ny && z0 + 1 < nz {
+    // `x0 < nx - 1` rather than `x0 + 1 < nx`: a huge finite position saturates `x0` at
+    // isize::MAX, where `x0 + 1` would overflow.
+    if x0 >= 0 && y0 >= 0 && z0 >= 0 && x0 < nx - 1 && y0 < ny - 1 && z0 < nz - 1 {
         // Fast path: all eight neighbours inside.
         let sy = shape[2];
         let sx = shape[1] * shape[2];
@@ -56,6 +58,10 @@ pub fn trilinear(data: &[f32], shape: [usize; 3], p: [f32; 3], border: Border) -
             Border::Nearest => data[0],
         };
     }
+    // Beyond one voxel outside, every neighbour along that axis is outside (Constant) or
+    // clamped to the same edge (Nearest): clamping the corner there changes no sample and
+    // keeps `x0 + 1` from overflowing for huge positions.
+    let (x0, y0, z0) = (x0.clamp(-2, nx), y0.clamp(-2, ny), z0.clamp(-2, nz));
     let fetch = |x: isize, y: isize, z: isize| -> f32 {
         match border {
             Border::Constant(c) => {
@@ -100,6 +106,19 @@ pub fn nearest<T: Copy>(data: &[T], shape: [usize; 3], p: [f32; 3], outside: T) 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn huge_positions_sample_the_border_without_overflow() {
+        // Far outside, every neighbour is outside: the padding value (Constant) or the edge
+        // voxel (Nearest) exactly.
+        let data: Vec<f32> = (0..24).map(|v| v as f32).collect();
+        let shape = [2, 3, 4];
+        for p in [[1e30, 0.5, 0.5], [-1e30, 1.0, 2.0], [0.0, 3e38, -3e38], [1e10, 1e10, 1e10]] {
+            assert_eq!(trilinear(&data, shape, p, Border::Constant(-7.0)), -7.0, "{p:?}");
+        }
+        assert_eq!(trilinear(&data, shape, [1e30, 0.0, 0.0], Border::Nearest), data[12]);
+        assert_eq!(trilinear(&data, shape, [-1e30, -1e30, 1e30], Border::Nearest), data[3]);
+    }
 
     #[test]
     fn trilinear_reproduces_linear_functions() {

@@ -129,3 +129,12 @@ def test_the_native_module_refuses_wrong_dtypes_without_crashing():
 
     with pytest.raises(TypeError):
         _sinew.mind_ssc(SCAN.astype(np.float64), np.eye(4))
+
+
+def test_huge_finite_fields_sample_outside_without_a_panic():
+    # Every sample lands far outside the moving scan: the padding value everywhere.
+    u = np.full(SCAN.shape + (3,), 1e30, np.float32)
+    np.testing.assert_array_equal(sinew.warp(SCAN, u, pad=-5.0), np.full(SCAN.shape, -5.0, np.float32))
+    assert (sinew.warp(LABELS, u, labels=True) == 0).all()
+    r = sinew.score(LABELS, LABELS, u)
+    assert all(lab["dice"] == 0.0 for lab in r["labels"])
