@@ -155,7 +155,11 @@ pub fn resolve_params(
         resize_last(&mut p.strides, n);
     }
     p = merged(&p, &Value::Object(over)).map_err(|e| ApiError::Parameter(format!("parameters: {e}")))?;
-    p.validate().map_err(|e| ApiError::Parameter(format!("parameters: {e}")))?;
+    p.validate().map_err(|e| match config {
+        // As the command line: a table's validation error names the table.
+        Some(_) => ApiError::Parameter(format!("{config_name}: parameters (with the keywords applied): {e}")),
+        None => ApiError::Parameter(format!("parameters: {e}")),
+    })?;
     Ok(p)
 }
 
@@ -565,7 +569,7 @@ mod tests {
         assert!(e.contains("unknown preset"), "{e}");
         let neg = serde_json::json!({"lambda": -1.0});
         let e = resolve_params("default", Some(&neg), "config", &Map::new()).unwrap_err().to_string();
-        assert!(e.contains("lambda"), "{e}");
+        assert!(e.starts_with("config: parameters (with the keywords applied): invalid parameter lambda"), "{e}");
     }
 
     #[test]
