@@ -64,9 +64,10 @@ fn main() {
             let js = sinew_transform::jacobian_stats(&det, None);
             let its: Vec<usize> = reg.levels.iter().map(|l| l.iterations).collect();
             println!(
-                "pair {i}-{j}: dice {dm0:.3} -> {dm:.4}  folding {:.4} %  sdlogj {:.3}  {secs:.2} s  iterations {its:?}",
+                "pair {i}-{j}: dice {dm0:.3} -> {dm:.4}  folding {:.4} %  sdlogj {:.3}  {secs:.2} s (affine {:.2} s)  iterations {its:?}",
                 100.0 * js.folding_fraction,
-                js.sd_log_j
+                js.sd_log_j,
+                reg.affine_s
             );
             sd += dm;
             s0 += dm0;

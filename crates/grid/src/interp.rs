@@ -1,4 +1,37 @@
 //! Point sampling of volumes at continuous voxel positions.
+//!
+//! # The border rule of sinew's trilinear sampler
+//!
+//! Every trilinear sample in sinew whose outside is not a known padding value (the warper with
+//! [`Border::Nearest`], the objective kernel of the deformable stage, the linear stage) uses
+//! one rule, implemented once in [`stencil`]. Along each axis with samples `a_0 … a_{n−1}`
+//! (n ≥ 2) a position `p` (voxels) is handled as
+//! ```text
+//! q  = clamp(p, 0, n−1)                 the position is clamped into the volume
+//! lo = min(⌊q⌋, n−2),  t = q − lo       the cell used is the nearest cell inside: at p ≥ n−1
+//!                                       it is the last cell with t = 1, so lo+1 always exists
+//! value(p) = (1−t)·a_lo + t·a_{lo+1}
+//! slope(p) = a_{lo+1} − a_lo            the derivative reported along this axis
+//! ```
+//! drawn for `n = 4` (`|` marks the faces at p = 0 and p = n−1):
+//! ```text
+//!   p:       -2   -1  |  0    1    2    3  |  4    5
+//!   value:   a0   a0  | a0 ─ a1 ─ a2 ─ a3  | a3   a3          (edge value repeats)
+//!   slope:   a1−a0    |a1−a0 a2−a1 a3−a2   |    a3−a2         (edge cell's slope continues)
+//! ```
+//! Inside the volume the slope is the exact derivative of the interpolant (one-sided at voxel
+//! planes, where the interpolant has a kink: the cell on the upper side is used, except at
+//! the last plane). Beyond a face the VALUE is the edge value (the derivative of the value is
+//! zero there) but the reported slope is the edge cell's: a restoring force. With the zero
+//! slope, lattice points that had left the scan saw no force at all and Adam's normalised
+//! steps carried them further out (measured: a 4 mm affine-stage registration went from
+//! 1.8 mm to 183 mm mean endpoint error). Optimisers that trust the gradient exactly (line
+//! searches) should keep in mind that beyond a face this slope is not the derivative of the
+//! value. An axis with a single sample (`n = 1`) has value `a_0` and slope 0.
+//!
+//! In three dimensions the rule applies per axis and the eight corners of the cell are
+//! blended with the products of the per-axis weights (see [`Stencil`]). For values this is
+//! `scipy.ndimage.map_coordinates(..., order=1, mode="nearest")`.
 
 /// What a sample sees outside the volume.
 ///
@@ -17,10 +50,78 @@ pub enum Border {
     Nearest,
 }
 
+/// The eight corners of the trilinear cell used at one position, with the weights of the
+/// value and of its three derivatives (see the module docs for the border rule).
+///
+/// For corner `n = 4a + 2b + c` (`a, b, c ∈ {0, 1}` the upper-corner flags along `i, j, k`):
+/// ```text
+/// offset[n]    = ((lo_i + a)·ny + lo_j + b)·nz + lo_k + c           (voxel index)
+/// weight[n][0] = ω_i(a)·ω_j(b)·ω_k(c)          ω_d(0) = 1 − t_d,  ω_d(1) = t_d
+/// weight[n][1] = σ(a)·ω_j(b)·ω_k(c)            σ(0) = −1,  σ(1) = +1
+/// weight[n][2] = ω_i(a)·σ(b)·ω_k(c)
+/// weight[n][3] = ω_i(a)·ω_j(b)·σ(c)
+/// ```
+/// so `value = Σ_n weight[n][0]·v[offset[n]]` and `slope_d = Σ_n weight[n][1+d]·v[offset[n]]`
+/// (voxel units), for every channel of a channel-last volume (`offset·C + channel`).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Stencil {
+    /// Voxel index of each corner (standard order).
+    pub offset: [usize; 8],
+    /// Per corner: weight of the value, of `∂/∂i`, `∂/∂j` and `∂/∂k`.
+    pub weight: [[f32; 4]; 8],
+}
+
+/// The cell of one axis under the border rule of the module docs: `(lo, t, upper step)` with
+/// the upper step 1, or 0 for a single-sample axis.
+#[inline(always)]
+fn axis_cell(p: f64, n: usize) -> (usize, f32, usize) {
+    if n < 2 {
+        return (0, 0.0, 0);
+    }
+    let max = (n - 1) as f64;
+    // NaN stays NaN through the clamp; `as usize` then gives 0 and the weights are NaN, so a
+    // NaN position gives a NaN sample instead of a wrong number.
+    let q = p.clamp(0.0, max);
+    let lo = q.floor().min(max - 1.0);
+    (lo as usize, (q - lo) as f32, 1)
+}
+
+/// The trilinear [`Stencil`] at voxel position `p` of a volume of shape `shape`, under the
+/// border rule of the module docs. Used by the warper, the objective kernel and the linear
+/// stage, each with its own channel loop.
+#[inline(always)]
+pub fn stencil(p: [f64; 3], shape: [usize; 3]) -> Stencil {
+    let (xi, tx, sx1) = axis_cell(p[0], shape[0]);
+    let (yi, ty, sy1) = axis_cell(p[1], shape[1]);
+    let (zi, tz, sz1) = axis_cell(p[2], shape[2]);
+    let (ny, nz) = (shape[1], shape[2]);
+    let wx = [1.0 - tx, tx];
+    let wy = [1.0 - ty, ty];
+    let wz = [1.0 - tz, tz];
+    let sg = [-1.0f32, 1.0];
+    let xs = [xi, xi + sx1];
+    let ys = [yi, yi + sy1];
+    let zs = [zi, zi + sz1];
+    let mut offset = [0usize; 8];
+    let mut weight = [[0.0f32; 4]; 8];
+    for a in 0..2 {
+        for b in 0..2 {
+            for c in 0..2 {
+                let n = a * 4 + b * 2 + c;
+                offset[n] = (xs[a] * ny + ys[b]) * nz + zs[c];
+                weight[n] =
+                    [wx[a] * wy[b] * wz[c], sg[a] * wy[b] * wz[c], wx[a] * sg[b] * wz[c], wx[a] * wy[b] * sg[c]];
+            }
+        }
+    }
+    Stencil { offset, weight }
+}
+
 /// Trilinear interpolation of `data` (standard order, shape `shape`) at voxel position `p`.
 ///
 /// `f(p) = Σ_{c ∈ {0,1}³} w_c · data[⌊p⌋ + c]`, with `w_c = Π_d (c_d ? t_d : 1 − t_d)` and
-/// `t = p − ⌊p⌋`.
+/// `t = p − ⌊p⌋`. Outside the volume: [`Border::Nearest`] is the shared border rule of the
+/// module docs (through [`stencil`]); [`Border::Constant`] blends in a padding value.
 #[inline]
 pub fn trilinear(data: &[f32], shape: [usize; 3], p: [f32; 3], border: Border) -> f32 {
     let (nx, ny, nz) = (shape[0] as isize, shape[1] as isize, shape[2] as isize);
@@ -58,23 +159,23 @@ pub fn trilinear(data: &[f32], shape: [usize; 3], p: [f32; 3], border: Border) -
             Border::Nearest => data[0],
         };
     }
+    let c = match border {
+        Border::Constant(c) => c,
+        Border::Nearest => {
+            // The shared border rule (module docs), value part.
+            let s = stencil([p[0] as f64, p[1] as f64, p[2] as f64], shape);
+            return (0..8).map(|n| s.weight[n][0] * data[s.offset[n]]).sum();
+        }
+    };
     // Beyond one voxel outside, every neighbour along that axis is outside (Constant) or
     // clamped to the same edge (Nearest): clamping the corner there changes no sample and
     // keeps `x0 + 1` from overflowing for huge positions.
     let (x0, y0, z0) = (x0.clamp(-2, nx), y0.clamp(-2, ny), z0.clamp(-2, nz));
     let fetch = |x: isize, y: isize, z: isize| -> f32 {
-        match border {
-            Border::Constant(c) => {
-                if x < 0 || y < 0 || z < 0 || x >= nx || y >= ny || z >= nz {
-                    c
-                } else {
-                    data[((x * ny + y) * nz + z) as usize]
-                }
-            }
-            Border::Nearest => {
-                let (x, y, z) = (x.clamp(0, nx - 1), y.clamp(0, ny - 1), z.clamp(0, nz - 1));
-                data[((x * ny + y) * nz + z) as usize]
-            }
+        if x < 0 || y < 0 || z < 0 || x >= nx || y >= ny || z >= nz {
+            c
+        } else {
+            data[((x * ny + y) * nz + z) as usize]
         }
     };
     let c00 = fetch(x0, y0, z0) * (1.0 - tz) + fetch(x0, y0, z0 + 1) * tz;
@@ -142,5 +243,82 @@ mod tests {
         assert!((v - 0.5 * f(0.0, 0.0, 0.0)).abs() < 1e-6);
         assert_eq!(nearest(&data, shape, [0.6, 1.4, 5.4], -1.0), f(1.0, 1.0, 5.0));
         assert_eq!(nearest(&data, shape, [3.6, 1.0, 1.0], -1.0), -1.0);
+    }
+
+    /// Value and slope of the stencil at `p`, for a scalar volume.
+    fn value_and_slope(data: &[f32], shape: [usize; 3], p: [f64; 3]) -> (f64, [f64; 3]) {
+        let s = stencil(p, shape);
+        let mut v = 0.0f64;
+        let mut g = [0.0f64; 3];
+        for n in 0..8 {
+            let d = data[s.offset[n]] as f64;
+            v += s.weight[n][0] as f64 * d;
+            for (a, ga) in g.iter_mut().enumerate() {
+                *ga += s.weight[n][1 + a] as f64 * d;
+            }
+        }
+        (v, g)
+    }
+
+    #[test]
+    fn stencil_slopes_match_central_differences_inside_and_the_edge_cell_beyond_every_face() {
+        // References: central differences (f(p+h) − f(p−h)) / 2h of the sampled value (a
+        // standard numerical check) and the border rule written in the module docs.
+        let shape = [4, 5, 6];
+        let f = |i: f64, j: f64, k: f64| (0.9 * i).sin() + 0.3 * j * j - (0.5 * k).cos() + 0.1 * i * j * k;
+        let mut data = vec![0.0f32; 120];
+        for i in 0..4 {
+            for j in 0..5 {
+                for k in 0..6 {
+                    data[(i * 5 + j) * 6 + k] = f(i as f64, j as f64, k as f64) as f32;
+                }
+            }
+        }
+        let h = 1e-3;
+        let value = |p: [f64; 3]| value_and_slope(&data, shape, p).0;
+        let fd = |p: [f64; 3], a: usize| {
+            let (mut pp, mut pm) = (p, p);
+            pp[a] += h;
+            pm[a] -= h;
+            (value(pp) - value(pm)) / (2.0 * h)
+        };
+        // Inside (off the voxel planes, where the interpolant is smooth): every slope is the
+        // derivative of the value; Border::Nearest agrees with the stencil's value.
+        for p in [[0.3, 1.7, 4.2], [2.6, 3.4, 0.45], [1.5, 0.2, 4.9]] {
+            let (v, g) = value_and_slope(&data, shape, p);
+            let tv = trilinear(&data, shape, p.map(|x| x as f32), Border::Nearest) as f64;
+            assert!((v - tv).abs() < 1e-5, "{p:?}: {v} vs {tv}");
+            for (a, ga) in g.iter().enumerate() {
+                assert!((ga - fd(p, a)).abs() < 1e-3, "{p:?} axis {a}: {ga} vs {}", fd(p, a));
+            }
+        }
+        // Beyond every face: the value is that of the clamped position, the slopes along the
+        // face are central differences of the value, and the slope across it is the edge
+        // cell's, i.e. the central difference just inside the face (at 0.25 or n − 1.25).
+        for axis in 0..3 {
+            for (outside, inside) in [(-0.7, 0.25), (shape[axis] as f64 - 1.0 + 0.8, shape[axis] as f64 - 1.25)] {
+                let mut p = [1.3, 2.6, 3.2];
+                p[axis] = outside;
+                let mut q = p;
+                q[axis] = q[axis].clamp(0.0, shape[axis] as f64 - 1.0);
+                let (v, g) = value_and_slope(&data, shape, p);
+                assert!((v - value(q)).abs() < 1e-6, "axis {axis} at {outside}: value");
+                let tv = trilinear(&data, shape, p.map(|x| x as f32), Border::Nearest) as f64;
+                assert!((v - tv).abs() < 1e-5, "axis {axis} at {outside}: Border::Nearest");
+                for (a, &ga) in g.iter().enumerate() {
+                    let want = if a == axis {
+                        let mut r = p;
+                        r[axis] = inside;
+                        fd(r, a)
+                    } else {
+                        fd(p, a)
+                    };
+                    assert!((ga - want).abs() < 1e-3, "axis {axis} at {outside}, slope {a}: {ga} vs {want}");
+                    if a == axis {
+                        assert!(ga.abs() > 0.05, "the edge cell's slope is not zero here");
+                    }
+                }
+            }
+        }
     }
 }
