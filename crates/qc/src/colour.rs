@@ -7,6 +7,8 @@ use crate::canvas::Rgb;
 pub const FOLD: Rgb = [255, 215, 0];
 /// Colour of voxels whose determinant is NaN or infinite.
 pub const NON_FINITE: Rgb = [96, 96, 96];
+/// Image pixels that lie outside the scanned volume (NaN in the image drawn): padding.
+pub const PADDING: Rgb = [40, 52, 72];
 /// Sheet background.
 pub const BACKGROUND: Rgb = [24, 24, 28];
 /// Main text colour.

@@ -401,7 +401,11 @@ fn render_panel(input: &QcInput, plane: &PlaneGeometry, column: Column, win: (f3
                 Column::Moving => input.moving_on_fixed,
                 _ => input.warped,
             };
-            paint(&mut tile, grey_of(img).into_iter().map(colour::grey).collect());
+            // NaN marks padding (outside the moving scan): drawn as padding, not as tissue.
+            paint(
+                &mut tile,
+                grey_of(img).into_iter().map(|g| if g.is_nan() { colour::PADDING } else { colour::grey(g) }).collect(),
+            );
             if let Some(l) = input.fixed_labels {
                 draw_contours(&mut tile, plane, l);
             }

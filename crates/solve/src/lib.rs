@@ -11,14 +11,18 @@ pub mod bspline;
 mod driver;
 mod error;
 pub mod fold;
+pub mod frames;
 pub mod kernel;
 pub mod lbfgs;
 pub mod param;
 mod params;
+pub mod scans;
 pub mod search;
 mod simd;
 pub mod svf;
 
 pub use driver::{local_standardised, register, EnergyReport, LevelReport, Progress, Registration, Stage};
 pub use error::SolveError;
+pub use frames::InitialMode;
 pub use params::{AffineMode, Model, Optimiser, RegParams, Similarity, PRESETS};
+pub use scans::{register_scans, ScanOptions, ScanRegistration};

@@ -94,6 +94,10 @@ pub struct CohortArgs {
     /// (the Dice the worst Q % of pairs fall below).
     #[arg(long, value_name = "Q", default_value_t = sinew_score::ROBUST_PERCENTILE, value_parser = percent)]
     pub robust_percentile: f64,
+    /// Working grid, initial alignment, anti-aliasing and NaN voxels of every pair (as in
+    /// `sinew register`).
+    #[command(flatten)]
+    pub scan: crate::cmd::register::ScanArgs,
     /// Print the pairs of this run (index, fixed, moving) and stop.
     #[arg(long)]
     pub list: bool,
@@ -325,6 +329,7 @@ fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> Reg
         model: None,
         grid_spacing: None,
         affine: None,
+        scan: args.scan.clone(),
         threads: None,
         no_qc: false,
         quiet: true,

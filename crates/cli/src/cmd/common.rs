@@ -25,7 +25,47 @@ pub struct Inputs {
     pub moving_labels: Option<LabelMap>,
     /// Mask on the fixed grid.
     pub mask: Option<LabelMap>,
+    /// What was done with NaN or infinite voxels.
+    pub nan: NanRecord,
     paths: Vec<(&'static str, PathBuf)>,
+}
+
+/// What to do with NaN or infinite voxels of a scan (`--nan`).
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum NanPolicy {
+    /// Refuse the scan (the default).
+    Refuse,
+    /// Padding: replaced by the scan's finite minimum; in the fixed scan also left out of the
+    /// data term.
+    Pad,
+    /// Replaced by this value.
+    Value(f32),
+}
+
+impl NanPolicy {
+    /// Parses `refuse`, `pad` or a number.
+    pub fn parse(s: &str) -> anyhow::Result<NanPolicy> {
+        match s.trim().to_ascii_lowercase().as_str() {
+            "refuse" => Ok(NanPolicy::Refuse),
+            "pad" => Ok(NanPolicy::Pad),
+            t => match t.parse::<f32>() {
+                Ok(v) if v.is_finite() => Ok(NanPolicy::Value(v)),
+                _ => bail!("--nan {s}: expected refuse, pad or a finite number"),
+            },
+        }
+    }
+}
+
+/// The NaN policy used and how many voxels it touched, for the report.
+#[derive(Clone, Copy, Debug, Serialize)]
+pub struct NanRecord {
+    /// The policy.
+    pub policy: NanPolicy,
+    /// Non-finite voxels replaced in the fixed scan.
+    pub fixed_voxels: usize,
+    /// Non-finite voxels replaced in the moving scan.
+    pub moving_voxels: usize,
 }
 
 /// One input file in a report.
@@ -49,11 +89,34 @@ impl Inputs {
         moving_labels: Option<&Path>,
         mask: Option<&Path>,
     ) -> anyhow::Result<Inputs> {
-        let fixed_img = read_finite_image(fixed)?;
-        let moving_img = read_finite_image(moving)?;
+        Inputs::load_with(fixed, moving, fixed_labels, moving_labels, mask, NanPolicy::Refuse)
+    }
+
+    /// [`Inputs::load`] with a policy for NaN or infinite voxels. With [`NanPolicy::Pad`],
+    /// the fixed scan's non-finite voxels are also removed from the mask (a mask of the
+    /// finite voxels is made when none is given), so they do not drive the data term.
+    pub fn load_with(
+        fixed: &Path,
+        moving: &Path,
+        fixed_labels: Option<&Path>,
+        moving_labels: Option<&Path>,
+        mask: Option<&Path>,
+        nan: NanPolicy,
+    ) -> anyhow::Result<Inputs> {
+        let (fixed_img, fixed_bad) = read_image_nan(fixed, nan)?;
+        let (moving_img, moving_bad) = read_image_nan(moving, nan)?;
         let fixed_labels_map = fixed_labels.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
         let moving_labels_map = moving_labels.map(|p| read_labels_on(p, &moving_img, moving)).transpose()?;
-        let mask_map = mask.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
+        let mut mask_map = mask.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
+        if let (NanPolicy::Pad, Some(bad)) = (nan, &fixed_bad) {
+            let m = mask_map.get_or_insert_with(|| LabelMap::filled(fixed_img.grid.clone(), 1));
+            m.as_slice_mut().iter_mut().zip(bad).filter(|(_, &b)| b).for_each(|(v, _)| *v = 0);
+            if m.as_slice().iter().all(|&v| v == 0) {
+                bail!("{}: no finite voxel is left for the data term", fixed.display());
+            }
+        }
+        let count = |b: &Option<Vec<bool>>| b.as_ref().map_or(0, |b| b.iter().filter(|&&x| x).count());
+        let nan_record = NanRecord { policy: nan, fixed_voxels: count(&fixed_bad), moving_voxels: count(&moving_bad) };
         if let Some(m) = &mask_map {
             if m.as_slice().iter().all(|&v| v == 0) {
                 bail!("{}: the mask is empty (no non-zero voxel)", mask.unwrap().display());
@@ -78,6 +141,7 @@ impl Inputs {
             fixed_labels: fixed_labels_map,
             moving_labels: moving_labels_map,
             mask: mask_map,
+            nan: nan_record,
             paths,
         })
     }
@@ -94,6 +158,32 @@ impl Inputs {
             .map(|(role, p)| Ok(InputRecord { role, path: p.display().to_string(), sha256: sha256_file(p)? }))
             .collect()
     }
+}
+
+/// Reads an image and applies `nan` to its NaN or infinite voxels: refused (the error of
+/// [`read_finite_image`]), or replaced (by the finite minimum for [`NanPolicy::Pad`]). Returns
+/// the image and, when any voxel was replaced, which.
+pub fn read_image_nan(path: &Path, nan: NanPolicy) -> anyhow::Result<(Image, Option<Vec<bool>>)> {
+    if nan == NanPolicy::Refuse {
+        return Ok((read_finite_image(path)?, None));
+    }
+    let mut img = sinew_io::read_image(path)?;
+    let Some((lo, hi)) = img.finite_range() else {
+        bail!("{}: no voxel holds a finite value", path.display());
+    };
+    if lo == hi {
+        bail!("{}: the image is constant ({lo}); nothing to register", path.display());
+    }
+    if img.count_non_finite() == 0 {
+        return Ok((img, None));
+    }
+    let value = match nan {
+        NanPolicy::Value(v) => v,
+        _ => lo,
+    };
+    let bad: Vec<bool> = img.as_slice().iter().map(|v| !v.is_finite()).collect();
+    img.as_slice_mut().iter_mut().filter(|v| !v.is_finite()).for_each(|v| *v = value);
+    Ok((img, Some(bad)))
 }
 
 /// Reads an image and rejects NaN or infinite voxels.

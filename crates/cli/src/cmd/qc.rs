@@ -179,7 +179,8 @@ fn render(
 ///
 /// `fixed` and `moving` are the input paths (for the title); `inputs` the loaded inputs;
 /// `moving_on_fixed` the moving scan on the fixed grid; `warped`, `field`, `jacdet` and
-/// `warped_labels` the registration's results on the fixed grid.
+/// `warped_labels` the registration's results on the fixed grid; `note` is appended to the
+/// title (register puts the initial alignment there).
 #[allow(clippy::too_many_arguments)]
 pub fn qc_for_pair(
     out_dir: &Path,
@@ -191,10 +192,15 @@ pub fn qc_for_pair(
     field: &Field,
     jacdet: &Image,
     warped_labels: Option<&LabelMap>,
+    note: Option<&str>,
 ) -> anyhow::Result<PathBuf> {
     let path = out_dir.join("qc.png");
     let opts = QcOptions::default();
-    let sheet = render(inputs, moving_on_fixed, warped, field, jacdet, warped_labels, pair_title(fixed, moving), &opts)
+    let mut title = pair_title(fixed, moving);
+    if let Some(n) = note {
+        title = format!("{title}   ·   {n}");
+    }
+    let sheet = render(inputs, moving_on_fixed, warped, field, jacdet, warped_labels, title, &opts)
         .with_context(|| format!("{}: drawing the QC sheet", path.display()))?;
     sinew_qc::write_png(&path, &sheet.image)?;
     Ok(path)

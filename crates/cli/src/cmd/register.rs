@@ -6,9 +6,9 @@ use std::time::Instant;
 use anyhow::{bail, Context};
 use clap::{Args, ValueEnum};
 use serde::Serialize;
-use sinew_grid::{resample, Border, Field, Image, LabelMap};
+use sinew_grid::{Border, Field, Image, LabelMap};
 use sinew_io::FieldUnits;
-use sinew_solve::{Optimiser, RegParams, Registration, Similarity, Stage};
+use sinew_solve::{InitialMode, Optimiser, RegParams, ScanOptions, ScanRegistration, Similarity, Stage};
 
 use crate::cmd::common::{self, Inputs};
 use crate::ui;
@@ -39,8 +39,7 @@ pub struct RegisterArgs {
     /// The fixed scan (NIfTI): the field lives on its grid.
     #[arg(long, short = 'f', value_name = "NII")]
     pub fixed: PathBuf,
-    /// The moving scan (NIfTI); a scan on another grid is brought onto the fixed grid
-    /// through world coordinates first.
+    /// The moving scan (NIfTI), on any grid and in any world frame (see --initial).
     #[arg(long, short = 'm', value_name = "NII")]
     pub moving: PathBuf,
     /// Output folder (created if needed); existing outputs in it are replaced atomically.
@@ -103,6 +102,9 @@ pub struct RegisterArgs {
     /// affine (12); its matrix is written to affine.json and included in field.nii.gz.
     #[arg(long, value_enum)]
     pub affine: Option<AffineArg>,
+    /// Working grid, initial alignment, anti-aliasing and NaN voxels.
+    #[command(flatten)]
+    pub scan: ScanArgs,
     /// Worker threads (default: all cores).
     #[arg(long, short = 'j')]
     pub threads: Option<usize>,
@@ -123,8 +125,81 @@ const REGISTER_EXAMPLES: &str = "Examples:
 
 Outputs in DIR: field.nii.gz (displacement, pull: warped(x) = moving(x + u(x))),
 warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz, qc.png (unless --no-qc),
-affine.json (with --affine rigid|affine: the 4x4 world-mm matrix, fixed point x -> moving A.x),
+affine.json (when a linear map was used: --affine rigid|affine, or the initial alignment of
+scans in different frames; the 4x4 world-mm matrix, fixed point x -> moving A.x),
 report.json (written last: its presence marks a complete folder).";
+
+/// How scans on their own grids and in their own world frames are brought together; shared
+/// by `register`, `cohort` and `demo`.
+#[derive(Args, Debug, Clone)]
+pub struct ScanArgs {
+    /// Spacing (mm) of the internal working grid the registration runs on; axes finer than
+    /// 0.8 times this are resampled to it, thicker ones (thick slices) are kept. 0 = register
+    /// on the fixed scan's own grid. Outputs are always on the fixed scan's grid.
+    #[arg(long, value_name = "MM", default_value_t = sinew_solve::scans::DEFAULT_WORKING_MM)]
+    pub working_spacing: f64,
+    /// Initial alignment of scans in different world frames, from their body masks: auto
+    /// (when the bodies overlap little or their centres lie far apart), centres, axes
+    /// (centres and principal axes) or off.
+    #[arg(long, value_enum, default_value_t = InitialArg::Auto)]
+    pub initial: InitialArg,
+    /// Do not smooth (anti-alias) a scan before bringing it to a coarser working grid.
+    #[arg(long)]
+    pub no_antialias: bool,
+    /// NaN or infinite voxels (outside the scanned volume in some exports): refuse (default),
+    /// pad (moving: the image minimum; fixed: the minimum, and left out of the data term) or a
+    /// number to put in their place.
+    #[arg(long, value_name = "refuse|pad|VALUE", default_value = "refuse", allow_hyphen_values = true)]
+    pub nan: String,
+}
+
+impl Default for ScanArgs {
+    fn default() -> Self {
+        ScanArgs {
+            working_spacing: sinew_solve::scans::DEFAULT_WORKING_MM,
+            initial: InitialArg::Auto,
+            no_antialias: false,
+            nan: "refuse".into(),
+        }
+    }
+}
+
+impl ScanArgs {
+    /// The solver's options.
+    pub fn options(&self) -> anyhow::Result<ScanOptions> {
+        if !(self.working_spacing.is_finite() && self.working_spacing >= 0.0) {
+            anyhow::bail!("--working-spacing {}: must be 0 or a positive number of mm", self.working_spacing);
+        }
+        Ok(ScanOptions {
+            working_spacing_mm: self.working_spacing,
+            initial: match self.initial {
+                InitialArg::Auto => InitialMode::Auto,
+                InitialArg::Centres => InitialMode::Centres,
+                InitialArg::Axes => InitialMode::Axes,
+                InitialArg::Off => InitialMode::Off,
+            },
+            antialias: !self.no_antialias,
+        })
+    }
+
+    /// The NaN policy.
+    pub fn nan_policy(&self) -> anyhow::Result<common::NanPolicy> {
+        common::NanPolicy::parse(&self.nan)
+    }
+}
+
+/// `--initial` values.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum InitialArg {
+    /// When the frames disagree (bodies overlap below 0.7 or centres over 30 mm apart).
+    Auto,
+    /// Always: translate by the body centres.
+    Centres,
+    /// Always: body centres and principal axes.
+    Axes,
+    /// Never: trust the world frames.
+    Off,
+}
 
 /// `--optimiser` values.
 #[derive(Clone, Copy, Debug, ValueEnum)]
@@ -302,12 +377,30 @@ pub struct Report {
     pub inputs: Vec<common::InputRecord>,
     /// The parameters used.
     pub params: RegParams,
+    /// Working grid, initial alignment mode and anti-aliasing.
+    pub scan: ScanOptions,
+    /// What was done with NaN or infinite voxels.
+    pub nan: common::NanRecord,
     /// Units of the vectors in field.nii.gz.
     pub field_units: UnitsArg,
     /// Worker threads.
     pub threads: usize,
-    /// Whether the moving scan had to be resampled onto the fixed grid first.
+    /// Whether the moving scan lies on another grid than the fixed scan.
     pub moving_resampled: bool,
+    /// The fixed scan's working grid (the registration's grid).
+    pub working_grid: sinew_solve::scans::GridSummary,
+    /// The moving scan's own working grid.
+    pub moving_working_grid: sinew_solve::scans::GridSummary,
+    /// True when the registration ran on the fixed scan's own grid.
+    pub working_is_fixed_grid: bool,
+    /// The initial alignment between the world frames (always computed; `applied` says
+    /// whether it was used) and the body overlap before and after.
+    pub initial_alignment: sinew_solve::frames::InitialAlignment,
+    /// The whole linear part of the map (4×4 world mm, fixed point ↦ moving point):
+    /// initial alignment then rigid/affine stage; the identity when neither ran.
+    pub linear_map: [[f64; 4]; 4],
+    /// The rigid/affine stage, when one ran (its `matrix` is the whole linear map).
+    pub linear: Option<sinew_solve::affine::AffineEstimate>,
     /// Stage timings in seconds.
     pub timings: Timings,
     /// Per-level reports (coarsest first).
@@ -325,8 +418,10 @@ pub struct Report {
 pub struct Timings {
     /// Reading the inputs.
     pub load_s: f64,
-    /// Bringing the moving scan onto the fixed grid.
+    /// Bringing both scans to their working grids (with the anti-aliasing prefilter).
     pub resample_s: f64,
+    /// Body masks and the initial alignment.
+    pub initial_s: f64,
     /// The linear (rigid/affine) stage.
     pub affine_s: f64,
     /// Building the pyramids.
@@ -362,30 +457,24 @@ pub fn run(args: RegisterArgs) -> anyhow::Result<()> {
 /// Registers one pair and writes its outputs; returns the report (used by the demo too).
 pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Report> {
     let t_all = Instant::now();
-    let inputs = Inputs::load(
+    let scan_opts = args.scan.options()?;
+    let inputs = Inputs::load_with(
         &args.fixed,
         &args.moving,
         args.fixed_labels.as_deref(),
         args.moving_labels.as_deref(),
         args.mask.as_deref(),
+        args.scan.nan_policy()?,
     )?;
     let mut timings = Timings { load_s: t_all.elapsed().as_secs_f64(), ..Timings::default() };
     let mut out_paths = OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, !args.no_qc);
-    if params.affine != sinew_solve::AffineMode::None {
-        out_paths.affine = Some(args.out.join("affine.json"));
-    }
+    out_paths.affine = Some(args.out.join("affine.json"));
     common::prepare_out_dir(&args.out, &out_paths.all(), &inputs.paths())?;
-
-    let t = Instant::now();
     let moving_resampled = !inputs.fixed.grid.same_as(&inputs.moving.grid, 1e-3);
-    let moving_on_fixed = if moving_resampled {
-        resample::resample_image(&inputs.moving, &inputs.fixed.grid, Border::Nearest)
-    } else {
-        inputs.moving.clone()
-    };
-    timings.resample_s = t.elapsed().as_secs_f64();
 
-    let reg = register_with_progress(&inputs.fixed, &moving_on_fixed, inputs.mask.as_ref(), params, args)?;
+    let reg = register_with_progress(&inputs.fixed, &inputs.moving, inputs.mask.as_ref(), params, &scan_opts, args)?;
+    timings.resample_s = reg.working_s;
+    timings.initial_s = reg.initial_s;
     timings.pyramid_s = reg.pyramid_s;
     timings.affine_s = reg.affine_s;
     timings.upsample_s = reg.upsample_s;
@@ -395,6 +484,19 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         timings.level_jacobian_s += l.jacobian_s;
     }
     timings.register_s = t_all.elapsed().as_secs_f64();
+    let linear_map = sinew_grid::Affine::from_4x4(reg.linear_map);
+    let has_linear = linear_map != sinew_grid::Affine::IDENTITY || reg.linear.is_some();
+    if !has_linear {
+        out_paths.affine = None;
+    }
+    if let Some(o) = reg.initial.overlap_final.filter(|&o| o < sinew_solve::frames::WARN_OVERLAP) {
+        eprintln!(
+            "warning: {} and {}: the bodies overlap only {:.0} % after the initial alignment; check that both scans show the same part of the body (qc.png)",
+            args.fixed.display(),
+            args.moving.display(),
+            100.0 * o
+        );
+    }
 
     let t = Instant::now();
     let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
@@ -414,25 +516,37 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
 
     let t = Instant::now();
     // A stale report would mark a folder of mixed old and new outputs complete: remove it
-    // first; if any write fails (full disk, ...), remove this run's outputs so that no partial
-    // set is left behind.
+    // first (and a stale affine.json that this run does not write); if any write fails (full
+    // disk, ...), remove this run's outputs so that no partial set is left behind.
     remove_files([&out_paths.report]);
+    if out_paths.affine.is_none() {
+        remove_files([args.out.join("affine.json")]);
+    }
+    let linear = reg.linear.clone().map(|mut e| {
+        // The stage ran after the initial alignment; the file holds the whole linear map.
+        e.matrix = reg.linear_map;
+        e
+    });
     let written = (|| -> anyhow::Result<Report> {
         write_outputs(&out_paths, &reg.field, args.field_units.into(), &warped, warped_labels.as_ref(), &jacdet)?;
-        if let (Some(path), Some(a)) = (&out_paths.affine, &reg.affine) {
-            common::write_json(path, a)?;
+        if let Some(path) = &out_paths.affine {
+            common::write_json(path, &LinearRecord { matrix: reg.linear_map, initial: &reg.initial, stage: &linear })?;
         }
         if out_paths.qc.is_some() {
+            // The moving scan in the fixed frame after the linear part of the map (initial
+            // alignment and rigid/affine stage); outside the moving scan: NaN, drawn as padding.
+            let before = sinew_solve::affine::apply_to_image(&inputs.moving, &linear_map, &inputs.fixed.grid, f32::NAN);
             crate::cmd::qc::qc_for_pair(
                 &args.out,
                 &args.fixed,
                 &args.moving,
                 &inputs,
-                &moving_on_fixed,
+                &before,
                 &warped,
                 &reg.field,
                 &jacdet,
                 warped_labels.as_ref(),
+                Some(&initial_line(&reg)),
             )?;
         }
         timings.write_s = t.elapsed().as_secs_f64();
@@ -443,11 +557,19 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
             sinew_version: env!("CARGO_PKG_VERSION"),
             inputs: inputs.records()?,
             params: params.clone(),
+            scan: scan_opts.clone(),
+            nan: inputs.nan,
             field_units: args.field_units,
             threads: rayon::current_num_threads(),
             moving_resampled,
+            working_grid: reg.working.clone(),
+            moving_working_grid: reg.moving_working.clone(),
+            working_is_fixed_grid: reg.working_is_fixed_grid,
+            initial_alignment: reg.initial.clone(),
+            linear_map: reg.linear_map,
+            linear,
             timings,
-            levels: reg.levels,
+            levels: reg.levels.clone(),
             jacobian,
             dice,
             outputs: out_paths.all().iter().map(|p| p.display().to_string()).collect(),
@@ -463,19 +585,51 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
     Ok(report)
 }
 
+/// `affine.json`: the whole linear part of the map and where it came from.
+#[derive(Serialize)]
+struct LinearRecord<'a> {
+    /// 4×4 world mm: fixed point `x` ↦ moving point `A·x` (initial alignment, then stage).
+    matrix: [[f64; 4]; 4],
+    /// The initial alignment.
+    initial: &'a sinew_solve::frames::InitialAlignment,
+    /// The rigid/affine stage (its `matrix` is the whole map too).
+    stage: &'a Option<sinew_solve::affine::AffineEstimate>,
+}
+
+/// One line for the QC sheet: the initial alignment and the body overlap.
+fn initial_line(reg: &ScanRegistration) -> String {
+    let i = &reg.initial;
+    let t = sinew_grid::Affine::from_4x4(reg.linear_map).apply(i.fixed_body.centre_mm);
+    let shift: Vec<String> = (0..3).map(|d| format!("{:.0}", t[d] - i.fixed_body.centre_mm[d])).collect();
+    format!(
+        "initial alignment {} ({}); body centre moved ({}) mm; body overlap {:.2} -> {:.2}",
+        if i.applied { "applied" } else { "not needed" },
+        match i.mode {
+            InitialMode::Auto => "auto",
+            InitialMode::Centres => "centres",
+            InitialMode::Axes => "axes",
+            InitialMode::Off => "off",
+        },
+        shift.join(", "),
+        i.overlap_identity,
+        i.overlap_final.unwrap_or(i.overlap_initial)
+    )
+}
+
 fn register_with_progress(
     fixed: &Image,
     moving: &Image,
     mask: Option<&LabelMap>,
     params: &RegParams,
+    scan: &ScanOptions,
     args: &RegisterArgs,
-) -> anyhow::Result<Registration> {
+) -> anyhow::Result<ScanRegistration> {
     let total: usize = params.iterations.iter().sum();
     let pb = ui::progress(total as u64, "registering", args.quiet);
     let mut done_before = 0usize;
     let mut last_level = usize::MAX;
     let mut level_iters = 0usize;
-    let reg = sinew_solve::register(fixed, moving, mask, params, &mut |p| {
+    let reg = sinew_solve::register_scans(fixed, moving, mask, params, scan, &mut |p| {
         if p.level != last_level && p.stage == Stage::Descriptors {
             done_before += level_iters;
             level_iters = 0;

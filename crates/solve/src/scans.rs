@@ -1,0 +1,279 @@
+//! Registering two scans as they come: each on its own native grid, in its own world frame.
+//!
+//! ```text
+//! fixed (native) ──> working grid W (about 2 mm) ──────────────┐
+//! moving (native) ─> its own working grid ─> bodies ─> T₀ ─> rigid/affine A ─> moving on W
+//!                                                                │
+//!                          register(fixed on W, moving on W) ─> u on W
+//!              field on the fixed native grid = A ∘ (x + u(x)), upsampled and composed exactly
+//! ```
+//! 1. **Working grids.** Each scan is brought to [`working_grid`]: the axes finer than the
+//!    working spacing are resampled to about that spacing over the same field of view (with
+//!    the anti-aliasing prefilter of [`sinew_grid::resample::resample_image_antialiased`]
+//!    unless switched off); thicker axes (thick slices) are kept as they are, never
+//!    interpolated finer. A scan already at about the working spacing is used as it is.
+//! 2. **Initial alignment** ([`crate::frames`]) between the two working images, each on its
+//!    own grid, so nothing outside the fixed field of view has been cut away yet.
+//! 3. **Linear stage** ([`crate::affine::estimate`]) from `T₀`, between the fixed working image
+//!    and the moving working image on its own grid: the rigid or affine mode asked for, or
+//!    rigid when the initial alignment was applied and none was asked for.
+//! 4. The moving working image is resampled through the linear map `A` onto the fixed working
+//!    grid `W`, and the deformable stage ([`crate::register`]) finds `u` on `W`.
+//! 5. The field is carried to the fixed scan's native grid ([`sinew_grid::resample::resample_field`],
+//!    which keeps the displacement in mm) and composed with `A` exactly
+//!    ([`crate::affine::compose_after`]): for fixed voxel `x`, `G_f·(x + u(x))` is the moving
+//!    scan's world point.
+//!
+//! When the fixed and moving scans share one grid that is already the working grid and the
+//! initial alignment is not needed, this is exactly [`crate::register`] on them.
+
+use std::time::Instant;
+
+use serde::Serialize;
+use sinew_grid::{resample, Affine, Border, Field, Grid, Image, LabelMap};
+
+use crate::affine::{self, AffineEstimate, AffineParams};
+use crate::frames::{self, InitialAlignment, InitialMode};
+use crate::{register, AffineMode, LevelReport, Progress, RegParams, SolveError};
+
+/// Options of [`register_scans`] beyond the registration parameters.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct ScanOptions {
+    /// Working spacing in mm (see [`working_grid`]); 0 registers on the fixed scan's own grid.
+    pub working_spacing_mm: f64,
+    /// When the initial alignment is applied.
+    pub initial: InitialMode,
+    /// Prefilter (Gaussian) when a scan is brought to a coarser working grid.
+    pub antialias: bool,
+}
+
+impl Default for ScanOptions {
+    /// 2 mm working grid, initial alignment when the frames disagree, anti-aliasing on.
+    fn default() -> Self {
+        ScanOptions { working_spacing_mm: DEFAULT_WORKING_MM, initial: InitialMode::Auto, antialias: true }
+    }
+}
+
+/// The default working spacing (mm).
+pub const DEFAULT_WORKING_MM: f64 = 2.0;
+
+/// An axis is resampled to the working spacing only when its spacing is below this share of it.
+pub const KEEP_RATIO: f64 = 0.8;
+
+/// The working grid of `grid` for a working spacing `s` mm: along each axis whose spacing is
+/// below `0.8·s` ([`KEEP_RATIO`]), `n' = max(1, round(n·spacing/s))` voxels over the same field
+/// of view (voxel corners kept, [`Grid::with_shape`]); other axes (already about `s` or
+/// thicker) keep their voxels. `s = 0` or no axis to change gives `grid` itself.
+pub fn working_grid(grid: &Grid, s: f64) -> Grid {
+    if s <= 0.0 {
+        return grid.clone();
+    }
+    let sp = grid.spacing();
+    let n = grid.shape();
+    let shape: [usize; 3] = std::array::from_fn(|d| {
+        if sp[d] < KEEP_RATIO * s {
+            ((n[d] as f64 * sp[d] / s).round() as usize).max(1)
+        } else {
+            n[d]
+        }
+    });
+    if shape == n {
+        return grid.clone();
+    }
+    grid.with_shape(shape).expect("non-empty shape")
+}
+
+/// A grid's shape and spacing, for reports.
+#[derive(Clone, Debug, Serialize)]
+pub struct GridSummary {
+    /// Voxels along i, j, k.
+    pub shape: [usize; 3],
+    /// Spacing in mm along i, j, k.
+    pub spacing_mm: [f64; 3],
+}
+
+impl From<&Grid> for GridSummary {
+    fn from(g: &Grid) -> Self {
+        GridSummary { shape: g.shape(), spacing_mm: g.spacing() }
+    }
+}
+
+/// The result of [`register_scans`].
+#[derive(Clone, Debug)]
+pub struct ScanRegistration {
+    /// The displacement field on the fixed scan's native grid (voxels, pull:
+    /// `warped(x) = moving(x + u(x))`, `x + u(x)` in fixed voxel coordinates, which may lie
+    /// outside the fixed grid when the frames differ).
+    pub field: Field,
+    /// The fixed working grid.
+    pub working: GridSummary,
+    /// The moving scan's own working grid.
+    pub moving_working: GridSummary,
+    /// True when the registration ran on the fixed native grid itself.
+    pub working_is_fixed_grid: bool,
+    /// The initial alignment (with the overlap after the linear stage).
+    pub initial: InitialAlignment,
+    /// The linear stage, when one ran.
+    pub linear: Option<AffineEstimate>,
+    /// The whole linear part `A` (4×4, world mm, fixed point ↦ moving point) included in
+    /// `field`: initial alignment then linear stage.
+    pub linear_map: [[f64; 4]; 4],
+    /// Per-level reports of the deformable stage (coarsest first).
+    pub levels: Vec<LevelReport>,
+    /// Seconds bringing both scans to their working grids.
+    pub working_s: f64,
+    /// Seconds for the bodies and the initial alignment.
+    pub initial_s: f64,
+    /// Seconds for the linear stage.
+    pub affine_s: f64,
+    /// Seconds building the pyramids.
+    pub pyramid_s: f64,
+    /// Seconds carrying the field to the native grid (and composing `A`).
+    pub upsample_s: f64,
+}
+
+fn to_working(img: &Image, grid: &Grid, antialias: bool) -> Option<Image> {
+    if grid.same_as(&img.grid, 1e-9) {
+        return None;
+    }
+    Some(if antialias {
+        resample::resample_image_antialiased(img, grid, Border::Nearest)
+    } else {
+        resample::resample_image(img, grid, Border::Nearest)
+    })
+}
+
+/// Registers `moving` to `fixed`, each on its own grid and in its own world frame (see the
+/// module docs). `mask` lies on the fixed grid (non-zero = inside the data term).
+pub fn register_scans(
+    fixed: &Image,
+    moving: &Image,
+    mask: Option<&LabelMap>,
+    params: &RegParams,
+    opts: &ScanOptions,
+    observer: &mut dyn FnMut(Progress),
+) -> Result<ScanRegistration, SolveError> {
+    params.validate()?;
+    if !(opts.working_spacing_mm >= 0.0 && opts.working_spacing_mm.is_finite()) {
+        return Err(SolveError::Parameter {
+            name: "working_spacing_mm",
+            why: format!("{} (must be 0 or a positive number of mm)", opts.working_spacing_mm),
+        });
+    }
+    for (which, img) in [("fixed", fixed), ("moving", moving)] {
+        let count = img.count_non_finite();
+        if count > 0 {
+            return Err(SolveError::NonFinite { which, count });
+        }
+    }
+    if let Some(m) = mask {
+        fixed.grid.ensure_same(&m.grid)?;
+    }
+    let t = Instant::now();
+    let wf = working_grid(&fixed.grid, opts.working_spacing_mm);
+    let wm = working_grid(&moving.grid, opts.working_spacing_mm);
+    let fixed_w_own = to_working(fixed, &wf, opts.antialias);
+    let moving_w_own = to_working(moving, &wm, opts.antialias);
+    let fixed_w = fixed_w_own.as_ref().unwrap_or(fixed);
+    let moving_w = moving_w_own.as_ref().unwrap_or(moving);
+    let working_s = t.elapsed().as_secs_f64();
+
+    let t = Instant::now();
+    let (mut initial, fmask, mmask) = frames::initial_alignment(fixed_w, moving_w, opts.initial);
+    let initial_s = t.elapsed().as_secs_f64();
+    let working_is_fixed_grid = fixed_w_own.is_none();
+
+    // Same grid, already the working grid, frames agree: the plain registration, unchanged.
+    if !initial.applied && working_is_fixed_grid && moving.grid.same_as(&fixed.grid, 1e-3) {
+        let reg = register(fixed, moving, mask, params, observer)?;
+        let a = reg.affine.as_ref().map_or(Affine::IDENTITY, |e| e.affine());
+        initial.overlap_final = Some(frames::overlap(fixed, &fmask, moving, &mmask, &a));
+        return Ok(ScanRegistration {
+            field: reg.field,
+            working: (&wf).into(),
+            moving_working: (&wm).into(),
+            working_is_fixed_grid,
+            initial,
+            linear_map: a.to_4x4(),
+            linear: reg.affine,
+            levels: reg.levels,
+            working_s,
+            initial_s,
+            affine_s: reg.affine_s,
+            pyramid_s: reg.pyramid_s,
+            upsample_s: reg.upsample_s,
+        });
+    }
+
+    let mask_w = mask.map(|m| if working_is_fixed_grid { m.clone() } else { resample::resample_labels(m, &wf) });
+    let t0 = initial.affine();
+    let mode = match (params.affine, initial.applied) {
+        (AffineMode::None, true) => AffineMode::Rigid,
+        (m, _) => m,
+    };
+    let t = Instant::now();
+    let (linear, a) = if mode == AffineMode::None {
+        (None, t0)
+    } else {
+        // The moving working image with its world coordinates pulled back through T₀, so the
+        // linear stage starts from the initial alignment: voxel p sits at T₀⁻¹·G_m·p.
+        let t0_inv = t0.inverse().expect("the initial alignment is invertible");
+        let relabelled_grid = Grid::new(wm.shape(), t0_inv.compose(moving_w.grid.affine()))?;
+        let relabelled = Image { grid: relabelled_grid, data: moving_w.data.clone() };
+        let est = affine::estimate(fixed_w, &relabelled, mask_w.as_ref(), &AffineParams::new(mode))?;
+        let a = t0.compose(&est.affine());
+        (Some(est), a)
+    };
+    let affine_s = t.elapsed().as_secs_f64();
+    initial.overlap_final = Some(frames::overlap(fixed_w, &fmask, moving_w, &mmask, &a));
+    drop((fmask, mmask));
+
+    // The moving scan on W through A: voxel p of W samples the moving scan at A·G_W·p.
+    let through = Grid::new(wf.shape(), a.compose(wf.affine()))?;
+    let mut moving_on_w = resample::resample_image(moving_w, &through, Border::Nearest);
+    moving_on_w.grid = wf.clone();
+    drop(moving_w_own);
+    let deformable = RegParams { affine: AffineMode::None, ..params.clone() };
+    let reg = register(fixed_w, &moving_on_w, mask_w.as_ref(), &deformable, observer)?;
+    drop((moving_on_w, fixed_w_own, mask_w));
+
+    let t = Instant::now();
+    let mut field = if working_is_fixed_grid { reg.field } else { resample::resample_field(&reg.field, &fixed.grid) };
+    if a != Affine::IDENTITY {
+        affine::compose_after(&mut field, &a);
+    }
+    let upsample_s = reg.upsample_s + t.elapsed().as_secs_f64();
+    Ok(ScanRegistration {
+        field,
+        working: (&wf).into(),
+        moving_working: (&wm).into(),
+        working_is_fixed_grid,
+        initial,
+        linear,
+        linear_map: a.to_4x4(),
+        levels: reg.levels,
+        working_s,
+        initial_s,
+        affine_s,
+        pyramid_s: reg.pyramid_s,
+        upsample_s,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn working_grid_keeps_thick_and_two_mm_axes() {
+        let g = Grid::axis_aligned([512, 512, 48], [0.57, 0.57, 5.0], [0.0; 3]);
+        let w = working_grid(&g, 2.0);
+        assert_eq!(w.shape(), [146, 146, 48]);
+        let sp = w.spacing();
+        assert!((sp[0] - 0.57 * 512.0 / 146.0).abs() < 1e-9 && sp[2] == 5.0);
+        // A 2 mm grid is its own working grid (the demo's case).
+        let d = Grid::axis_aligned([144, 112, 192], [2.0; 3], [1.0, 2.0, 3.0]);
+        assert_eq!(working_grid(&d, 2.0), d);
+        assert_eq!(working_grid(&g, 0.0), g);
+    }
+}
