@@ -76,17 +76,86 @@ where
 {
     if is_gz_name(path) {
         write_atomic(path, |w| {
-            let mut e = GzEncoder::new(w, Compression::new(GZIP_LEVEL));
+            let mut e = ParallelGz::new(w);
             e.write_all(header)?;
             body(&mut e)?;
-            e.finish()?;
-            Ok(())
+            e.finish()
         })
     } else {
         write_atomic(path, |w| {
             w.write_all(header)?;
             body(w)
         })
+    }
+}
+
+/// Bytes per gzip member of [`ParallelGz`].
+const GZ_CHUNK: usize = 16 << 20;
+
+/// A gzip writer that compresses fixed-size chunks of its input ([`GZ_CHUNK`] bytes) as
+/// independent gzip members on the rayon pool, and writes them in order. A series of members
+/// is a valid gzip file (RFC 1952, section 2.2: "a gzip file consists of a series of
+/// members"), read as one stream by gzip, zlib's `gzread`, Python's `gzip` module (nibabel) and
+/// flate2's `MultiGzDecoder`. Chunk boundaries depend only on the byte count, so the output
+/// does not depend on the thread count; an input of at most one chunk is one member, the
+/// plain single-stream file. At most `2 × threads` chunks are held at once.
+struct ParallelGz<'a> {
+    out: &'a mut dyn Write,
+    full: Vec<Vec<u8>>,
+    current: Vec<u8>,
+}
+
+impl<'a> ParallelGz<'a> {
+    fn new(out: &'a mut dyn Write) -> ParallelGz<'a> {
+        ParallelGz { out, full: Vec::new(), current: Vec::new() }
+    }
+
+    /// Compresses the full chunks in parallel and writes them in order.
+    fn flush_full(&mut self) -> std::io::Result<()> {
+        use rayon::prelude::*;
+        let members: Vec<std::io::Result<Vec<u8>>> = self.full.par_iter().map(|c| gzip_member(c)).collect();
+        for m in members {
+            self.out.write_all(&m?)?;
+        }
+        self.full.clear();
+        Ok(())
+    }
+
+    /// Writes everything left, as the last member(s).
+    fn finish(mut self) -> std::io::Result<()> {
+        if !self.current.is_empty() || self.full.is_empty() {
+            let last = std::mem::take(&mut self.current);
+            self.full.push(last);
+        }
+        self.flush_full()
+    }
+}
+
+fn gzip_member(data: &[u8]) -> std::io::Result<Vec<u8>> {
+    let mut e = GzEncoder::new(Vec::with_capacity(data.len() / 2 + 64), Compression::new(GZIP_LEVEL));
+    e.write_all(data)?;
+    e.finish()
+}
+
+impl Write for ParallelGz<'_> {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        if self.current.capacity() == 0 {
+            self.current.reserve_exact(GZ_CHUNK);
+        }
+        let n = buf.len().min(GZ_CHUNK - self.current.len());
+        self.current.extend_from_slice(&buf[..n]);
+        if self.current.len() == GZ_CHUNK {
+            let chunk = std::mem::take(&mut self.current);
+            self.full.push(chunk);
+            if self.full.len() >= 2 * rayon::current_num_threads() {
+                self.flush_full()?;
+            }
+        }
+        Ok(n)
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        Ok(())
     }
 }
 

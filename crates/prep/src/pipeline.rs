@@ -49,6 +49,11 @@ pub struct Steps {
     pub orient: Option<AxisCodes>,
     /// Resample to a spacing or a shape.
     pub resample: Option<Resample>,
+    /// Anti-aliasing: smooth the image before resampling along axes that get coarser
+    /// (`sinew_grid::resample::resample_image_antialiased`). Off in `Steps::default()` (plain
+    /// trilinear, what `scipy.ndimage.map_coordinates(order=1)` gives); `sinew prep` turns it
+    /// on unless `--no-antialias`.
+    pub antialias: bool,
     /// Crop or pad to a shape.
     pub crop_pad: Option<CropPadStep>,
     /// Clip intensities to a window.
@@ -113,6 +118,8 @@ pub enum StepRecord {
     Resample {
         /// `"spacing"` or `"shape"`.
         target: &'static str,
+        /// Anti-aliasing Gaussian σ along each input axis, in input voxels (0 = none).
+        antialias_sigma_voxels: [f64; 3],
         /// Grid after the step.
         grid: GridRecord,
     },
@@ -228,11 +235,18 @@ pub fn prepare(mut image: Image, mut labels: Option<LabelMap>, steps: &Steps) ->
             Resample::Shape(n) => (grid_with_shape(&image.grid, n)?, "shape"),
         };
         // A target equal to the current grid (to 1e-9 mm) leaves the values as they are.
-        if !grid.same_as(&image.grid, 1e-9) {
-            image = resample::resample_image(&image, &grid, Border::Nearest);
+        let same = grid.same_as(&image.grid, 1e-9);
+        let sigma_voxels =
+            if steps.antialias && !same { resample::antialias_sigmas(&image.grid, &grid) } else { [0.0; 3] };
+        if !same {
+            image = if steps.antialias {
+                resample::resample_image_antialiased(&image, &grid, Border::Nearest)
+            } else {
+                resample::resample_image(&image, &grid, Border::Nearest)
+            };
             labels = labels.map(|l| resample::resample_labels(&l, &grid));
         }
-        log.push(StepRecord::Resample { target, grid: (&grid).into() });
+        log.push(StepRecord::Resample { target, antialias_sigma_voxels: sigma_voxels, grid: (&grid).into() });
     }
     let mut mask = None;
     if steps.needs_mask() {

@@ -103,8 +103,10 @@ impl Inputs {
         mask: Option<&Path>,
         nan: NanPolicy,
     ) -> anyhow::Result<Inputs> {
-        let (fixed_img, fixed_bad) = read_image_nan(fixed, nan)?;
-        let (moving_img, moving_bad) = read_image_nan(moving, nan)?;
+        // Both scans at once (decompression is single-threaded per file).
+        let (f, m) = rayon::join(|| read_image_nan(fixed, nan), || read_image_nan(moving, nan));
+        let (fixed_img, fixed_bad) = f?;
+        let (moving_img, moving_bad) = m?;
         let fixed_labels_map = fixed_labels.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
         let moving_labels_map = moving_labels.map(|p| read_labels_on(p, &moving_img, moving)).transpose()?;
         let mut mask_map = mask.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;

@@ -61,6 +61,13 @@ pub struct PrepArgs {
     /// Resample to this spacing in mm along i, j, k (centred on the same field of view).
     #[arg(long, value_name = "X,Y,Z", value_parser = parse_f64x3, conflicts_with = "shape")]
     pub spacing: Option<[f64; 3]>,
+    /// Plain trilinear resampling: no Gaussian anti-aliasing before going to a coarser grid.
+    #[arg(long)]
+    pub no_antialias: bool,
+    /// NaN or infinite voxels: refuse (default), pad (the image minimum) or a number to put in
+    /// their place; recorded in prep_log.json.
+    #[arg(long, value_name = "refuse|pad|VALUE", default_value = "refuse", allow_hyphen_values = true)]
+    pub nan: String,
     /// Resample to this many voxels over the same field of view.
     #[arg(long, value_name = "NX,NY,NZ", value_parser = parse_usizex3)]
     pub shape: Option<[usize; 3]>,
@@ -160,6 +167,8 @@ struct FileLog {
     before: GridRecord,
     after: GridRecord,
     steps: Vec<StepRecord>,
+    /// NaN or infinite voxels replaced under `--nan` (0 with the default refusal).
+    non_finite_replaced: usize,
     seconds: f64,
     /// Wall-clock seconds spent reading, preparing and writing this file.
     timings: Timings,
@@ -186,6 +195,8 @@ struct PrepLog {
     order: &'static str,
     recipe: Option<String>,
     pipeline: Recipe,
+    /// What `--nan` asked for.
+    nan: common::NanPolicy,
     files: Vec<FileLog>,
 }
 
@@ -208,6 +219,7 @@ pub fn effective_steps(args: &PrepArgs) -> Result<Steps> {
     if let Some(sp) = args.spacing {
         s.resample = Some(Resample::Spacing(sp));
     }
+    s.antialias = !args.no_antialias;
     if let Some(sh) = args.shape {
         s.resample = Some(Resample::Shape(sh));
     }
@@ -399,8 +411,11 @@ fn check_outputs(jobs: &[Job], dir: &Path, mask: bool) -> Result<()> {
 }
 
 /// Reads an image and its label map and checks them (finite values, labels on the image grid).
-fn load(job: &Job) -> Result<(sinew_grid::Image, Option<sinew_grid::LabelMap>)> {
-    let img = common::read_finite_image(&job.image)?;
+/// With a `--nan` policy other than refuse, non-finite voxels are replaced first (their count
+/// is returned).
+fn load(job: &Job, nan: common::NanPolicy) -> Result<(sinew_grid::Image, Option<sinew_grid::LabelMap>, usize)> {
+    let (img, bad) = common::read_image_nan(&job.image, nan)?;
+    let replaced = bad.map_or(0, |b| b.iter().filter(|&&x| x).count());
     let lab = match &job.labels {
         Some(p) => {
             let l = sinew_io::read_labels(p)?;
@@ -417,7 +432,7 @@ fn load(job: &Job) -> Result<(sinew_grid::Image, Option<sinew_grid::LabelMap>)> 
         }
         None => None,
     };
-    Ok((img, lab))
+    Ok((img, lab, replaced))
 }
 
 /// A hidden staging folder inside the output folder, removed on drop unless emptied.
@@ -450,6 +465,7 @@ fn remove_leftovers(out: &Path) {
 
 fn run_inner(args: &PrepArgs) -> Result<()> {
     let steps = effective_steps(args)?;
+    let nan = common::NanPolicy::parse(&args.nan)?;
     let jobs = collect_jobs(&args.inputs, &args.labels)?;
     check_outputs(&jobs, &args.out, steps.mask)?;
 
@@ -458,7 +474,7 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
     let mut sums = Vec::with_capacity(jobs.len());
     for j in &jobs {
         pb.set_message(stem(&j.image));
-        load(j)?;
+        load(j, nan)?;
         let lab_sum = j.labels.as_deref().map(common::sha256_file).transpose()?;
         sums.push((common::sha256_file(&j.image)?, lab_sum));
         pb.inc(1);
@@ -483,7 +499,7 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
     for (j, (sha, lab_sha)) in jobs.iter().zip(sums) {
         pb.set_message(stem(&j.image));
         let t = Instant::now();
-        let (img, lab) = load(j)?;
+        let (img, lab, non_finite_replaced) = load(j, nan)?;
         let t_read = t.elapsed().as_secs_f64();
         let before = GridRecord::from(&img.grid);
         let p = prepare(img, lab, &steps).with_context(|| j.image.display().to_string())?;
@@ -521,6 +537,7 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
                 output: o.display().to_string(),
             }),
             mask: out_mask.map(|m| m.display().to_string()),
+            non_finite_replaced,
             before,
             after,
             steps: p.steps,
@@ -547,6 +564,7 @@ fn run_inner(args: &PrepArgs) -> Result<()> {
         order: ORDER,
         recipe: args.recipe.as_ref().map(|p| p.display().to_string()),
         pipeline: Recipe::from_steps(&steps),
+        nan,
         files,
     };
     common::write_json(&args.out.join("prep_log.json"), &log)?;

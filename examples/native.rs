@@ -1,0 +1,142 @@
+//! Time and memory of `sinew register` on scans at a scanner's native resolution:
+//! `cargo run --release --example native [-- --threads 2 --out /tmp/sinew-native]`.
+//!
+//! Three cases, each a real chest CT and a copy of it pulled through a smooth known field of
+//! at most 10 mm (so the printed endpoint error says the result is still right):
+//! - **thin**: the scan upsampled to 512×512×400 voxels and labelled 0.8×0.8×1 mm (a body
+//!   of the size of a large patient; 105 M voxels, a typical thin-slice CT);
+//! - **thick**: the scan at 256×256×48 voxels of 1.14×1.14×5 mm (3.1 M voxels);
+//! - **iso2**: the same field of view on a 2 mm grid (146×146×120), the cost the thick-slice
+//!   case should not exceed.
+//!
+//! The scan is `chest_ct_a.nii.gz` of the shared real-CT folder (open data from the
+//! pyradiomics 3.1.0 source distribution, BSD-3-Clause), read in place; `SINEW_REAL_CT` names
+//! another folder. Inputs are written once into `--out` and reused. Figures come from each
+//! run's `report.json` (stage timings, peak resident memory `VmHWM`) and the wall clock.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::time::Instant;
+
+use sinew_grid::{resample, Affine, Border, Grid, Image};
+
+fn binary() -> PathBuf {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let status = Command::new("cargo")
+        .args(["build", "--release", "-q", "-p", "sinew-cli"])
+        .current_dir(root)
+        .status()
+        .expect("cargo runs");
+    assert!(status.success(), "building sinew failed");
+    let target = std::env::var("CARGO_TARGET_DIR").map(PathBuf::from).unwrap_or_else(|_| root.join("target"));
+    target.join("release").join("sinew")
+}
+
+/// The scan resampled to `shape` over its own field of view, then labelled with `spacing`
+/// (directions kept): a body scaled to that spacing.
+fn scan_as(native: &Image, shape: [usize; 3], spacing: [f64; 3]) -> Image {
+    let g = native.grid.with_shape(shape).unwrap();
+    let mut img = resample::resample_image_antialiased(native, &g, Border::Nearest);
+    let lin = g.affine().linear();
+    let sp = g.spacing();
+    let scaled: [[f64; 3]; 3] = std::array::from_fn(|r| std::array::from_fn(|c| lin[r][c] / sp[c] * spacing[c]));
+    img.grid = Grid::new(shape, Affine::from_parts(scaled, g.affine().translation())).unwrap();
+    img
+}
+
+fn write_pair(dir: &Path, name: &str, native: &Image, shape: [usize; 3], spacing: [f64; 3]) -> (PathBuf, PathBuf) {
+    let f = dir.join(format!("{name}_fixed.nii.gz"));
+    let m = dir.join(format!("{name}_moving.nii.gz"));
+    if !f.exists() || !m.exists() {
+        let moving = scan_as(native, shape, spacing);
+        let truth = sinew_phantom::known_field(&moving.grid, 10.0);
+        let fixed = sinew_transform::warp_image(&moving, &truth, Border::Nearest).unwrap();
+        sinew_io::write_image(&m, &moving).unwrap();
+        sinew_io::write_image(&f, &fixed).unwrap();
+        sinew_io::write_field(&dir.join(format!("{name}_truth.nii.gz")), &truth, sinew_io::FieldUnits::Voxel).unwrap();
+    }
+    (f, m)
+}
+
+/// Mean endpoint error (mm) over every 4th voxel of the body (> −500 HU in the fixed scan)
+/// whose true endpoint stays inside the slices.
+fn epe(dir: &Path, name: &str, out: &Path) -> f64 {
+    let opts = sinew_io::FieldReadOptions::default();
+    let (truth, _) = sinew_io::read_field(&dir.join(format!("{name}_truth.nii.gz")), opts.clone()).unwrap();
+    let (u, _) = sinew_io::read_field(&out.join("field.nii.gz"), opts).unwrap();
+    let fixed = sinew_io::read_image(&dir.join(format!("{name}_fixed.nii.gz"))).unwrap();
+    let lin = u.grid.affine().linear();
+    let [_, ny, nz] = u.grid.shape();
+    let (mut s, mut n) = (0.0f64, 0usize);
+    for idx in (0..u.grid.len()).step_by(4) {
+        let k = (idx % nz) as f64;
+        let tk = k + truth.component(2)[idx] as f64;
+        if fixed.as_slice()[idx] <= -500.0 || tk < 0.5 || tk > nz as f64 - 1.5 {
+            continue;
+        }
+        let _ = ny;
+        let d: [f64; 3] = std::array::from_fn(|c| (u.component(c)[idx] - truth.component(c)[idx]) as f64);
+        let w: [f64; 3] = std::array::from_fn(|r| (0..3).map(|c| lin[r][c] * d[c]).sum());
+        s += (w[0] * w[0] + w[1] * w[1] + w[2] * w[2]).sqrt();
+        n += 1;
+    }
+    s / n as f64
+}
+
+fn main() {
+    let mut threads = "2".to_string();
+    let mut out = PathBuf::from("/tmp/sinew-native");
+    let mut only: Option<String> = None;
+    let mut args = std::env::args().skip(1);
+    while let Some(a) = args.next() {
+        match a.as_str() {
+            "--threads" => threads = args.next().expect("--threads N"),
+            "--out" => out = PathBuf::from(args.next().expect("--out DIR")),
+            "--only" => only = args.next(),
+            _ => panic!("unknown argument {a}"),
+        }
+    }
+    std::fs::create_dir_all(&out).unwrap();
+    let bin = binary();
+    let dir = std::env::var("SINEW_REAL_CT").unwrap_or_else(|_| "/work/shared/data/real-ct".into());
+    let native = sinew_io::read_image(&Path::new(&dir).join("chest_ct_a.nii.gz")).expect("the real CT");
+    let cases: [(&str, [usize; 3], [f64; 3]); 3] = [
+        ("thin", [512, 512, 400], [0.8, 0.8, 1.0]),
+        ("thick", [256, 256, 48], [1.14, 1.14, 5.0]),
+        ("iso2", [146, 146, 120], [2.0, 2.0, 2.0]),
+    ];
+    println!("case   shape            spacing (mm)       voxels   wall_s  register_s  write_s  peak_MB  EPE_mm");
+    for (name, shape, spacing) in cases {
+        if only.as_deref().is_some_and(|o| o != name) {
+            continue;
+        }
+        let (f, m) = write_pair(&out, name, &native, shape, spacing);
+        let run_dir = out.join(format!("{name}_out"));
+        let t = Instant::now();
+        let st = Command::new(&bin)
+            .args(["register", "-q", "-j", &threads, "-f"])
+            .arg(&f)
+            .arg("-m")
+            .arg(&m)
+            .arg("-o")
+            .arg(&run_dir)
+            .status()
+            .expect("sinew runs");
+        let wall = t.elapsed().as_secs_f64();
+        assert!(st.success(), "sinew register failed on {name}");
+        let report: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(run_dir.join("report.json")).unwrap()).unwrap();
+        let tm = &report["timings"];
+        let e = epe(&out, name, &run_dir);
+        println!(
+            "{name:<6} {:<16} {:<18} {:>7.1}M {wall:>7.2} {:>11.2} {:>8.2} {:>8.0} {e:>7.3}",
+            format!("{shape:?}"),
+            format!("{spacing:?}"),
+            shape.iter().product::<usize>() as f64 / 1e6,
+            tm["register_s"].as_f64().unwrap_or(f64::NAN),
+            tm["write_s"].as_f64().unwrap_or(f64::NAN),
+            tm["peak_rss_mb"].as_f64().unwrap_or(f64::NAN),
+        );
+        println!("{}", serde_json::json!({ "case": name, "wall_s": wall, "timings": tm, "epe_mm": e }));
+    }
+}
