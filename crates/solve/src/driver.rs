@@ -11,7 +11,6 @@ use crate::bspline::BsplineModel;
 use crate::fold::FoldPenalty;
 use crate::kernel::{Energy, Problem};
 use crate::param::{GaussianDense, Parametrisation};
-use crate::search::{discrete_search, SearchParams};
 use crate::{adam::Adam, affine, lbfgs, svf, AffineMode, Model, Optimiser, RegParams, Similarity, SolveError};
 
 /// A stage of the registration, reported to the observer.
@@ -171,19 +170,6 @@ pub fn register(
         let level_mask = mask.map(|m| mask_on(m, &lattice));
         let init = match variable.take() {
             Some(f) => resample::resample_field(&f, &lattice),
-            None if params.search_radius > 0 => {
-                let sp = SearchParams {
-                    radius: params.search_radius,
-                    patch: 1,
-                    alpha: params.search_alpha,
-                    sigma: 1.0,
-                    rounds: 3,
-                };
-                let u = discrete_search(&fd.data, &md.data, fd.channels, lattice.shape(), &sp);
-                let mut f = Field::zeros(lattice.clone());
-                f.data.as_slice_mut().expect("standard layout").copy_from_slice(&u);
-                f
-            }
             None => Field::zeros(lattice.clone()),
         };
         let t = Instant::now();

@@ -17,7 +17,6 @@ pub mod lbfgs;
 pub mod param;
 mod params;
 pub mod scans;
-pub mod search;
 mod simd;
 pub mod svf;
 

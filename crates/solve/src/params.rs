@@ -74,11 +74,13 @@ pub struct RegParams {
     pub iterations: Vec<usize>,
     /// Adam step size per optimised level, coarsest first, in voxels of that level.
     pub step_size: Vec<f32>,
-    /// Diffusion weight λ (dimensionless: the regulariser is the squared mm/mm gradient).
+    /// Diffusion weight λ of the finest optimised level (dimensionless: the regulariser is
+    /// the squared mm/mm gradient). The one knob that trades overlap against smoothness.
     pub lambda: f32,
-    /// Diffusion weight per optimised level, coarsest first; empty = `lambda` at every level.
-    /// A flexible coarse level captures large organ shifts that a stiff one cannot reach.
-    pub lambda_levels: Vec<f32>,
+    /// Factor on λ per optimised level, coarsest first (empty = 1 everywhere): level `s`
+    /// uses `λ·lambda_scale[s]`. Flexible coarse levels capture large organ shifts that a
+    /// stiff field cannot reach; the finest level sets the smoothness of the result.
+    pub lambda_scale: Vec<f32>,
     /// Weight μ of the folding penalty `μ·P(u)`, `P(u) = 1/N · Σ_x max(0, τ − det J(x))²`
     /// with `J` the Jacobian of `x ↦ x + u(x)` (central differences, spacing-aware) and
     /// `τ = fold_threshold`: it pushes determinants away from zero where folds would form,
@@ -86,11 +88,6 @@ pub struct RegParams {
     pub fold_weight: f32,
     /// Threshold τ of the folding penalty (a determinant below it is penalised).
     pub fold_threshold: f32,
-    /// Radius R (voxels of the coarsest level) of the discrete displacement search that
-    /// starts the coarsest level (see [`crate::search`]); 0 = off.
-    pub search_radius: usize,
-    /// Weight α of the discrete search's smoothness pull, relative to its mean cost.
-    pub search_alpha: f32,
     /// The optimiser.
     pub optimiser: Optimiser,
     /// The data term.
@@ -141,17 +138,15 @@ impl RegParams {
             finest_level: 0,
             strides: vec![1, 1, 2, 2],
             iterations: vec![80, 60, 40, 40],
-            step_size: vec![0.5, 0.5, 0.3, 0.2],
-            lambda: 0.1,
-            lambda_levels: Vec::new(),
-            fold_weight: 0.0,
+            step_size: vec![1.0, 0.8, 0.5, 0.3],
+            lambda: 0.05,
+            lambda_scale: vec![0.1, 0.2, 0.4, 1.0],
+            fold_weight: 20.0,
             fold_threshold: 0.1,
-            search_radius: 0,
-            search_alpha: 0.5,
             optimiser: Optimiser::Adam,
             similarity: Similarity::MindSsc,
             mind_radius: 1,
-            mind_dilation: 2,
+            mind_dilation: 1,
             ncc_sigma: 2.0,
             tolerance: 1e-4,
             patience: 10,
@@ -176,9 +171,24 @@ impl RegParams {
         }
     }
 
-    /// The diffusion weight of optimised level `step` (0 = coarsest).
+    /// Switches to the diffeomorphic mode with the settings it is accurate with: λ = 0.1 at
+    /// every level, MIND-SSC dilation 2, the earlier step sizes, and no folding penalty
+    /// (the exponential of a velocity field cannot fold, and the penalty's gradient through
+    /// the exponential is only approximate). Measured on a 25 mm known warp: mean endpoint
+    /// error 1.34 mm and no folds with these, 2.38 mm and 0.1 % folded voxels with the dense
+    /// defaults, whose flexible coarse levels give a velocity too rough to integrate.
+    pub fn make_diffeomorphic(&mut self) {
+        self.diffeomorphic = true;
+        self.lambda = 0.1;
+        self.lambda_scale.clear();
+        self.mind_dilation = 2;
+        self.fold_weight = 0.0;
+        self.step_size = self.step_size.iter().map(|s| s.min(0.5)).collect();
+    }
+
+    /// The diffusion weight `λ·lambda_scale[step]` of optimised level `step` (0 = coarsest).
     pub fn lambda_at(&self, step: usize) -> f32 {
-        self.lambda_levels.get(step).copied().unwrap_or(self.lambda)
+        self.lambda * self.lambda_scale.get(step).copied().unwrap_or(1.0)
     }
 
     /// Number of optimised levels: `levels − finest_level`.
@@ -214,12 +224,12 @@ impl RegParams {
         if !(self.lambda.is_finite() && self.lambda >= 0.0) {
             return bad("lambda", format!("{} must be finite and ≥ 0", self.lambda));
         }
-        if !(self.lambda_levels.is_empty()
-            || (self.lambda_levels.len() == n && self.lambda_levels.iter().all(|l| l.is_finite() && *l >= 0.0)))
+        if !(self.lambda_scale.is_empty()
+            || (self.lambda_scale.len() == n && self.lambda_scale.iter().all(|l| l.is_finite() && *l >= 0.0)))
         {
             return bad(
-                "lambda_levels",
-                format!("needs none or {n} finite values ≥ 0 (one per optimised level), got {:?}", self.lambda_levels),
+                "lambda_scale",
+                format!("needs none or {n} finite values ≥ 0 (one per optimised level), got {:?}", self.lambda_scale),
             );
         }
         if !(self.fold_weight.is_finite() && self.fold_weight >= 0.0) {
@@ -227,15 +237,6 @@ impl RegParams {
         }
         if !(self.fold_threshold.is_finite() && (0.0..=1.0).contains(&self.fold_threshold)) {
             return bad("fold_threshold", format!("{} is outside [0, 1]", self.fold_threshold));
-        }
-        if self.search_radius > 6 {
-            return bad("search_radius", format!("{} is outside 0..=6", self.search_radius));
-        }
-        if !(self.search_alpha.is_finite() && self.search_alpha >= 0.0) {
-            return bad("search_alpha", format!("{} must be finite and ≥ 0", self.search_alpha));
-        }
-        if self.search_radius > 0 && self.strides.first() != Some(&1) {
-            return bad("search_radius", "the discrete search needs stride 1 at the coarsest level".into());
         }
         if self.patience == 0 {
             return bad("patience", "must be at least 1".into());

@@ -9,14 +9,40 @@
 
 use sinew_grid::{interp, Border, Field};
 
-/// Number of squarings `K` so that `max|v| / 2^K ≤ 0.5` voxel (at least 4, at most 12).
+/// Number of squarings `K` so that `max|v| / 2^K ≤ 0.5` voxel AND the largest difference of
+/// `v` between neighbouring voxels, divided by `2^K`, is at most 0.25 (at least 4, at most
+/// 16). The first alone is not enough: `x + v/2^K` is invertible only when its Jacobian
+/// `I + ∇v/2^K` stays near the identity, which a rough velocity field violates long before its
+/// magnitude does (measured: a 25 mm recovery folded 0.06 % of the voxels with the magnitude
+/// rule alone).
 pub fn squarings_for(v: &Field) -> u32 {
     let mut m = 0.0f32;
     for &x in v.data.iter() {
         m = m.max(x.abs());
     }
+    let [nx, ny, nz] = v.grid.shape();
+    let mut g = 0.0f32;
+    for d in 0..3 {
+        let c = v.component(d);
+        for i in 0..nx {
+            for j in 0..ny {
+                for k in 0..nz {
+                    let idx = (i * ny + j) * nz + k;
+                    if i + 1 < nx {
+                        g = g.max((c[idx + ny * nz] - c[idx]).abs());
+                    }
+                    if j + 1 < ny {
+                        g = g.max((c[idx + nz] - c[idx]).abs());
+                    }
+                    if k + 1 < nz {
+                        g = g.max((c[idx + 1] - c[idx]).abs());
+                    }
+                }
+            }
+        }
+    }
     let mut k = 4;
-    while k < 12 && m / (1u32 << k) as f32 > 0.5 {
+    while k < 16 && (m / (1u32 << k) as f32 > 0.5 || g / (1u32 << k) as f32 > 0.25) {
         k += 1;
     }
     k

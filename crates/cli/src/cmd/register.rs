@@ -279,6 +279,8 @@ impl RegisterArgs {
                 ("iterations", self.iterations.is_some() || resize_last(&mut p.iterations, n)),
                 ("step_size", resize_last(&mut p.step_size, n)),
                 ("strides", resize_last(&mut p.strides, n)),
+                // An empty factor list means 1 at every level.
+                ("lambda_scale", p.lambda_scale.is_empty() || resize_last(&mut p.lambda_scale, n)),
             ] {
                 if !ok {
                     bail!(
@@ -288,6 +290,9 @@ impl RegisterArgs {
                     );
                 }
             }
+        }
+        if self.diffeomorphic {
+            p.make_diffeomorphic();
         }
         if let Some(l) = self.lambda {
             p.lambda = l;
@@ -307,9 +312,6 @@ impl RegisterArgs {
                 SimilarityArg::Ssd => Similarity::Ssd,
                 SimilarityArg::Lncc => Similarity::Lncc,
             };
-        }
-        if self.diffeomorphic {
-            p.diffeomorphic = true;
         }
         if let Some(m) = self.model {
             p.model = match m {
