@@ -41,7 +41,7 @@ fn organ_volumes_follow_their_shape_formulas() {
     let fov = p.grid();
     let (z0, z1) = (fov.corners_world()[0][2] - 2.0, fov.corners_world()[7][2] + 2.0);
     for s in 0..5 {
-        let d = draws(7, s);
+        let d = draws(7, s, 1.0);
         let subj = generate(7, s, &p);
         for (l, blob) in d.anatomy.blobs() {
             let got = label_ml(&subj, &p, l);
