@@ -62,7 +62,7 @@ fn write_pair(dir: &Path, name: &str, native: &Image, shape: [usize; 3], spacing
 /// whose true endpoint stays inside the slices.
 fn epe(dir: &Path, name: &str, out: &Path) -> f64 {
     let opts = sinew_io::FieldReadOptions::default();
-    let (truth, _) = sinew_io::read_field(&dir.join(format!("{name}_truth.nii.gz")), opts.clone()).unwrap();
+    let (truth, _) = sinew_io::read_field(&dir.join(format!("{name}_truth.nii.gz")), opts).unwrap();
     let (u, _) = sinew_io::read_field(&out.join("field.nii.gz"), opts).unwrap();
     let fixed = sinew_io::read_image(&dir.join(format!("{name}_fixed.nii.gz"))).unwrap();
     let lin = u.grid.affine().linear();

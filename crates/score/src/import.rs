@@ -376,8 +376,8 @@ mod tests {
             let mut v = Vec::new();
             for (i, j, k) in ndarray::indices((m[0], m[1], m[2])) {
                 let x = [s[0] * i as f64 + t, s[1] * j as f64 + t, s[2] * k as f64 + t];
-                for d in 0..3 {
-                    v.push((linear(d, x) / s[d]) as f32);
+                for (d, sd) in s.iter().enumerate() {
+                    v.push((linear(d, x) / sd) as f32);
                 }
             }
             let conv = Conventions { low_res: low, ..Default::default() };

@@ -230,15 +230,15 @@ pub fn symmetric_eigen(m: [[f64; 3]; 3]) -> ([f64; 3], [[f64; 3]; 3]) {
             let t = if theta == 0.0 { 1.0 } else { t };
             let (cs, sn) = (1.0 / (t * t + 1.0).sqrt(), t / (t * t + 1.0).sqrt());
             // a ← Jᵀ·a·J with J the rotation in the (p, q) plane.
-            for k in 0..3 {
-                let (akp, akq) = (a[k][p], a[k][q]);
-                a[k][p] = cs * akp - sn * akq;
-                a[k][q] = sn * akp + cs * akq;
+            for row in a.iter_mut() {
+                let (akp, akq) = (row[p], row[q]);
+                row[p] = cs * akp - sn * akq;
+                row[q] = sn * akp + cs * akq;
             }
+            let (rp, rq) = (a[p], a[q]);
             for k in 0..3 {
-                let (apk, aqk) = (a[p][k], a[q][k]);
-                a[p][k] = cs * apk - sn * aqk;
-                a[q][k] = sn * apk + cs * aqk;
+                a[p][k] = cs * rp[k] - sn * rq[k];
+                a[q][k] = sn * rp[k] + cs * rq[k];
             }
             for row in v.iter_mut() {
                 let (vp, vq) = (row[p], row[q]);
@@ -405,8 +405,8 @@ mod tests {
         let (f, m) = (ellipsoid(gf, [0.0; 3]), ellipsoid(gm, shift));
         let (a, _, _) = initial_alignment(&f, &m, InitialMode::Auto);
         assert!(a.applied && a.overlap_identity < 0.01, "{a:?}");
-        for d in 0..3 {
-            assert!((a.centre_shift_mm[d] - shift[d]).abs() < 1.0, "{:?}", a.centre_shift_mm);
+        for (got, want) in a.centre_shift_mm.iter().zip(shift) {
+            assert!((got - want).abs() < 1.0, "{:?}", a.centre_shift_mm);
         }
         assert!(a.overlap_initial > 0.95, "{}", a.overlap_initial);
         // With the axes too: the same bodies have the same axes, so no rotation.
