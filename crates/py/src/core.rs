@@ -153,6 +153,13 @@ pub fn resolve_params(
         resize_last(&mut p.iterations, n);
         resize_last(&mut p.step_size, n);
         resize_last(&mut p.strides, n);
+        resize_last(&mut p.lambda_scale, n);
+    }
+    // As the command line's --diffeomorphic: the mode with the settings it is accurate with,
+    // before the other keywords (so an explicit `lambda_` still wins).
+    if over.get("diffeomorphic") == Some(&Value::Bool(true)) {
+        over.remove("diffeomorphic");
+        p.make_diffeomorphic();
     }
     p = merged(&p, &Value::Object(over)).map_err(|e| ApiError::Parameter(format!("parameters: {e}")))?;
     p.validate().map_err(|e| match config {
