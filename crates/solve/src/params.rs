@@ -77,9 +77,11 @@ pub struct RegParams {
     /// Diffusion weight λ of the finest optimised level (dimensionless: the regulariser is
     /// the squared mm/mm gradient). The one knob that trades overlap against smoothness.
     pub lambda: f32,
-    /// Factor on λ per optimised level, coarsest first (empty = 1 everywhere): level `s`
-    /// uses `λ·lambda_scale[s]`. Flexible coarse levels capture large organ shifts that a
-    /// stiff field cannot reach; the finest level sets the smoothness of the result.
+    /// Factor on λ per optimised level, coarsest first (empty = 1 everywhere). The list is
+    /// aligned at its finest end: with fewer optimised levels than entries the coarsest
+    /// entries are unused, with more the first entry repeats. Flexible coarse levels capture
+    /// large organ shifts that a stiff field cannot reach; the finest level sets the
+    /// smoothness of the result.
     pub lambda_scale: Vec<f32>,
     /// Weight μ of the folding penalty `μ·P(u)`, `P(u) = 1/N · Σ_x max(0, τ − det J(x))²`
     /// with `J` the Jacobian of `x ↦ x + u(x)` (central differences, spacing-aware) and
@@ -186,9 +188,13 @@ impl RegParams {
         self.step_size = self.step_size.iter().map(|s| s.min(0.5)).collect();
     }
 
-    /// The diffusion weight `λ·lambda_scale[step]` of optimised level `step` (0 = coarsest).
+    /// The diffusion weight of optimised level `step` (0 = coarsest): `λ` times the entry of
+    /// `lambda_scale` as far from its finest end as `step` is from the finest optimised level.
     pub fn lambda_at(&self, step: usize) -> f32 {
-        self.lambda * self.lambda_scale.get(step).copied().unwrap_or(1.0)
+        let from_finest = self.optimised_levels().saturating_sub(1 + step);
+        let k = self.lambda_scale.len();
+        let factor = if k == 0 { 1.0 } else { self.lambda_scale[k.saturating_sub(1 + from_finest).min(k - 1)] };
+        self.lambda * factor
     }
 
     /// Number of optimised levels: `levels − finest_level`.
@@ -224,13 +230,8 @@ impl RegParams {
         if !(self.lambda.is_finite() && self.lambda >= 0.0) {
             return bad("lambda", format!("{} must be finite and ≥ 0", self.lambda));
         }
-        if !(self.lambda_scale.is_empty()
-            || (self.lambda_scale.len() == n && self.lambda_scale.iter().all(|l| l.is_finite() && *l >= 0.0)))
-        {
-            return bad(
-                "lambda_scale",
-                format!("needs none or {n} finite values ≥ 0 (one per optimised level), got {:?}", self.lambda_scale),
-            );
+        if self.lambda_scale.len() > 8 || self.lambda_scale.iter().any(|l| !(l.is_finite() && *l >= 0.0)) {
+            return bad("lambda_scale", format!("needs at most 8 finite values ≥ 0, got {:?}", self.lambda_scale));
         }
         if !(self.fold_weight.is_finite() && self.fold_weight >= 0.0) {
             return bad("fold_weight", format!("{} must be finite and ≥ 0", self.fold_weight));
@@ -272,6 +273,17 @@ impl RegParams {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn lambda_scale_is_aligned_at_the_finest_level() {
+        let mut p = RegParams { lambda: 2.0, lambda_scale: vec![0.1, 0.2, 0.4, 1.0], ..RegParams::default() };
+        assert_eq!((0..4).map(|s| p.lambda_at(s)).collect::<Vec<_>>(), [0.2, 0.4, 0.8, 2.0]);
+        p.finest_level = 1; // three optimised levels: the coarsest entry is unused
+        assert_eq!((0..3).map(|s| p.lambda_at(s)).collect::<Vec<_>>(), [0.4, 0.8, 2.0]);
+        p.finest_level = 0;
+        p.levels = 6; // six levels: the first entry repeats at the coarser ones
+        assert_eq!((0..6).map(|s| p.lambda_at(s)).collect::<Vec<_>>(), [0.2, 0.2, 0.2, 0.4, 0.8, 2.0]);
+    }
 
     #[test]
     fn presets_are_valid() {
