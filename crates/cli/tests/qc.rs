@@ -94,3 +94,70 @@ fn writes_a_sheet_and_refuses_bad_input() {
     let out = sinew(&["qc", "-f", &fixed, "-m", &moving, "--field", &field, "-o", &moving]);
     assert_eq!(out.status.code(), Some(2));
 }
+
+/// The scan of `src` mapped by the README's prep recipe (−1000 … 1500 HU to [0, 1]).
+fn unit_scaled(src: &str, dst: &Path) -> String {
+    let mut img = sinew_io::read_image(Path::new(src)).unwrap();
+    img.as_slice_mut().iter_mut().for_each(|v| *v = ((*v + 1000.0) / 2500.0).clamp(0.0, 1.0));
+    sinew_io::write_image(dst, &img).unwrap();
+    dst.to_str().unwrap().to_string()
+}
+
+fn qc_record(dir: &Path) -> serde_json::Value {
+    let r: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.join("report.json")).unwrap()).unwrap();
+    r["qc"].clone()
+}
+
+#[test]
+fn qc_window_of_register_cohort_and_demo() {
+    let tmp = tempfile::tempdir().unwrap();
+    let (fixed, moving, _, _, _) = setup(tmp.path());
+    let run = |args: &[&str]| {
+        let out = sinew(args);
+        assert!(out.status.success(), "{args:?}: {}", text(&out.stderr));
+    };
+    let fast = ["--preset", "fast", "-q"];
+    // HU scans: auto keeps the soft-tissue window.
+    let hu = tmp.path().join("hu");
+    run(&[&["register", "-f", &fixed, "-m", &moving, "-o", hu.to_str().unwrap()][..], &fast].concat());
+    let q = qc_record(&hu);
+    assert_eq!(
+        (q["window"].clone(), q["window_rule"].as_str()),
+        (serde_json::json!([-200.0, 300.0]), Some("hounsfield"))
+    );
+    // Scaled to [0, 1]: auto takes the foreground's percentiles, inside [0, 1] and not flat.
+    let (f1, m1) =
+        (unit_scaled(&fixed, &tmp.path().join("f1.nii.gz")), unit_scaled(&moving, &tmp.path().join("m1.nii.gz")));
+    let unit = tmp.path().join("unit");
+    run(&[&["register", "-f", &f1, "-m", &m1, "-o", unit.to_str().unwrap()][..], &fast].concat());
+    let q = qc_record(&unit);
+    assert_eq!(q["window_rule"], "percentiles");
+    let (lo, hi) = (q["window"][0].as_f64().unwrap(), q["window"][1].as_f64().unwrap());
+    // Soft tissue (about 0 … 100 HU, i.e. 0.4 … 0.44) lies inside the window.
+    assert!(0.0 < lo && lo < 0.4 && 0.44 < hi && hi <= 1.0, "window {lo} … {hi}");
+    // An explicit window through cohort, which passes it to every pair.
+    let coh = tmp.path().join("cohort");
+    let data = tmp.path().join("data");
+    run(&[
+        &["cohort", "--all-pairs", data.to_str().unwrap(), "-o", coh.to_str().unwrap(), "--qc-window=-100,250"][..],
+        &fast,
+    ]
+    .concat());
+    let q = qc_record(&coh.join("pairs/subject_00__subject_01"));
+    assert_eq!(
+        (q["window"].clone(), q["window_rule"].as_str()),
+        (serde_json::json!([-100.0, 250.0]), Some("explicit"))
+    );
+    // Refusals name the option and the problem, for all three commands.
+    for cmd in [
+        vec!["register", "-f", &fixed, "-m", &moving, "-o", "never", "--qc-window", "300,-200"],
+        vec!["cohort", "--all-pairs", data.to_str().unwrap(), "-o", "never", "--qc-window", "a,b"],
+        vec!["demo", "--out", "never", "--qc-window", "1,2,3"],
+    ] {
+        let out = sinew(&cmd);
+        assert_eq!(out.status.code(), Some(2), "{cmd:?}");
+        assert!(text(&out.stderr).contains("--qc-window"), "{cmd:?}: {}", text(&out.stderr));
+        assert!(!Path::new("never").exists());
+    }
+}

@@ -22,3 +22,4 @@ pub use canvas::{write_png, Rgb, RgbImage};
 pub use error::QcError;
 pub use plane::{PlaneGeometry, PlaneKind};
 pub use sheet::{render_qc_sheet, Column, KeyFigures, Panel, QcInput, QcOptions, QcSheet, Window};
+pub use sheet::{resolve_window, ResolvedWindow, WindowRule};

@@ -53,15 +53,57 @@ pub enum Window {
         /// Value shown white.
         hi: f32,
     },
-    /// The 1st to 99th percentile of the fixed scan's values.
+    /// The 1st to 99th percentile of the fixed scan's foreground (see [`resolve_window`]).
     Percentiles,
+    /// [`Window::CT_SOFT`] when the fixed scan's values look like Hounsfield units, else
+    /// [`Window::Percentiles`] (the rule is written out at [`resolve_window`]). The default.
+    Auto,
 }
 
 impl Window {
-    /// The soft-tissue CT window used by default: −200 to 300 HU (common practice for
-    /// abdominal CT).
+    /// The soft-tissue CT window: −200 to 300 HU (common practice for abdominal CT).
     pub const CT_SOFT: Window = Window::Range { lo: -200.0, hi: 300.0 };
 }
+
+/// How the grey window of a sheet was chosen.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum WindowRule {
+    /// Given by the user.
+    Explicit,
+    /// `auto` on a scan in Hounsfield units: the soft-tissue window −200 … 300 HU.
+    Hounsfield,
+    /// The 1st … 99th percentile of the fixed scan's foreground.
+    Percentiles,
+}
+
+impl WindowRule {
+    /// Lower-case name, as recorded in `report.json` (`explicit`, `hounsfield`, `percentiles`).
+    pub fn name(self) -> &'static str {
+        match self {
+            WindowRule::Explicit => "explicit",
+            WindowRule::Hounsfield => "hounsfield",
+            WindowRule::Percentiles => "percentiles",
+        }
+    }
+}
+
+/// A grey window resolved for one fixed scan: values `lo … hi` map to black … white.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct ResolvedWindow {
+    /// Value shown black (in the scan's units).
+    pub lo: f32,
+    /// Value shown white (in the scan's units).
+    pub hi: f32,
+    /// How it was chosen.
+    pub rule: WindowRule,
+}
+
+/// Smallest value a scan must reach for `auto` to take it as Hounsfield units (air is
+/// about −1000 HU, so a CT that shows any air or lung goes below it).
+pub const HU_MIN_BELOW: f32 = -500.0;
+/// Largest value a scan must reach for `auto` to take it as Hounsfield units (bone and
+/// contrast lie above it).
+pub const HU_MAX_ABOVE: f32 = 300.0;
 
 /// How a sheet is drawn.
 #[derive(Clone, Debug, PartialEq)]
@@ -82,7 +124,7 @@ pub struct QcOptions {
 
 impl Default for QcOptions {
     fn default() -> Self {
-        QcOptions { point: None, window: Window::CT_SOFT, panel_px: 220, grid_every: 6, jacobian_log2_range: 1.0 }
+        QcOptions { point: None, window: Window::Auto, panel_px: 220, grid_every: 6, jacobian_log2_range: 1.0 }
     }
 }
 
@@ -158,6 +200,8 @@ pub struct QcSheet {
     pub point: [usize; 3],
     /// The (lo, hi) grey window applied.
     pub window: (f32, f32),
+    /// How the window was chosen.
+    pub window_rule: WindowRule,
     /// Pixel size in mm.
     pub mm_per_px: f64,
     /// The figures in the title.
@@ -212,24 +256,62 @@ pub fn default_point(grid: &sinew_grid::Grid, labels: Option<&LabelMap>) -> [usi
     [s[0] / 2, s[1] / 2, s[2] / 2]
 }
 
-fn resolve_window(w: Window, fixed: &Image) -> Result<(f32, f32), QcError> {
+/// Resolves a window against the fixed scan.
+///
+/// - [`Window::Range`]: as given (finite, `lo < hi`).
+/// - [`Window::Auto`]: Hounsfield units are assumed when the scan's finite values reach both
+///   `min ≤` [`HU_MIN_BELOW`] (−500) and `max ≥` [`HU_MAX_ABOVE`] (300); then the window is
+///   [`Window::CT_SOFT`] (−200 … 300 HU). Otherwise (scans scaled to [0, 1], MR, …) it is
+///   the percentile window below.
+/// - [`Window::Percentiles`]: the foreground is every finite voxel above
+///   `min + 0.02·(max − min)` (this leaves out air or background at the bottom of the range);
+///   the window runs from its 1st to its 99th percentile (the value at rank
+///   `round(q·(n − 1))` of the sorted values, `q = 0.01, 0.99`). When the foreground holds
+///   fewer than 100 voxels all finite voxels are used; a flat result becomes `lo … lo + 1`.
+///
+/// Errors on an invalid range or a scan without finite voxels.
+pub fn resolve_window(w: Window, fixed: &Image) -> Result<ResolvedWindow, QcError> {
+    let percentiles = || -> Result<ResolvedWindow, QcError> {
+        let (min, max) = fixed
+            .finite_range()
+            .ok_or_else(|| QcError::BadOption("percentile window of an image with no finite voxel".into()))?;
+        let cut = min + 0.02 * (max - min);
+        let mut v: Vec<f32> = fixed.as_slice().iter().copied().filter(|x| x.is_finite() && *x > cut).collect();
+        if v.len() < 100 {
+            v = fixed.as_slice().iter().copied().filter(|x| x.is_finite()).collect();
+        }
+        v.sort_by(f32::total_cmp);
+        let at = |q: f64| v[((v.len() - 1) as f64 * q).round() as usize];
+        let (lo, hi) = (at(0.01), at(0.99));
+        let hi = if lo < hi { hi } else { lo + 1.0 };
+        Ok(ResolvedWindow { lo, hi, rule: WindowRule::Percentiles })
+    };
     match w {
         Window::Range { lo, hi } => {
             if !(lo.is_finite() && hi.is_finite() && lo < hi) {
                 return Err(QcError::BadOption(format!("window {lo}..{hi}: need finite lo < hi")));
             }
-            Ok((lo, hi))
+            Ok(ResolvedWindow { lo, hi, rule: WindowRule::Explicit })
         }
-        Window::Percentiles => {
-            let mut v: Vec<f32> = fixed.as_slice().iter().copied().filter(|x| x.is_finite()).collect();
-            if v.is_empty() {
-                return Err(QcError::BadOption("percentile window of an image with no finite voxel".into()));
+        Window::Percentiles => percentiles(),
+        Window::Auto => match fixed.finite_range() {
+            Some((min, max)) if min <= HU_MIN_BELOW && max >= HU_MAX_ABOVE => {
+                Ok(ResolvedWindow { lo: -200.0, hi: 300.0, rule: WindowRule::Hounsfield })
             }
-            v.sort_by(f32::total_cmp);
-            let at = |q: f64| v[((v.len() - 1) as f64 * q).round() as usize];
-            let (lo, hi) = (at(0.01), at(0.99));
-            Ok(if lo < hi { (lo, hi) } else { (lo, lo + 1.0) })
-        }
+            _ => percentiles(),
+        },
+    }
+}
+
+/// A window value for the title: 4 significant digits, no trailing zeros.
+fn window_value(v: f32) -> String {
+    let a = v.abs();
+    let decimals = if a >= 1000.0 || a == 0.0 { 0 } else { (3 - a.log10().floor() as i32).clamp(0, 6) as usize };
+    let s = format!("{v:.decimals$}");
+    if s.contains('.') {
+        s.trim_end_matches('0').trim_end_matches('.').to_string()
+    } else {
+        s
     }
 }
 
@@ -267,7 +349,8 @@ pub fn render_qc_sheet(input: &QcInput, opts: &QcOptions) -> Result<QcSheet, QcE
     if (0..3).any(|d| point[d] >= shape[d]) {
         return Err(QcError::PointOutside { point, shape });
     }
-    let (lo, hi) = resolve_window(opts.window, fixed)?;
+    let win = resolve_window(opts.window, fixed)?;
+    let (lo, hi) = (win.lo, win.hi);
     let figures = key_figures(input)?;
 
     let spacing = grid.spacing();
@@ -284,7 +367,7 @@ pub fn render_qc_sheet(input: &QcInput, opts: &QcOptions) -> Result<QcSheet, QcE
     let height = top + row_h.iter().sum::<u32>() + 2 * GAP + MARGIN + 18;
     let mut img = RgbImage::new(width, height, BACKGROUND);
 
-    draw_title(&mut img, input, &figures, point, (lo, hi), mm_per_px, opts);
+    draw_title(&mut img, input, &figures, point, win, mm_per_px, opts);
     let x0 = MARGIN + ROW_LABEL_W;
     for (c, col) in Column::ALL.iter().enumerate() {
         let pieces = col.header();
@@ -316,7 +399,7 @@ pub fn render_qc_sheet(input: &QcInput, opts: &QcOptions) -> Result<QcSheet, QcE
     let foot = "orientation: patient's right on the left, anterior/superior up (radiological)";
     img.text(x0 as f32, (height - MARGIN - 14) as f32, foot, style(11.0, TEXT_DIM, false));
 
-    Ok(QcSheet { image: img, panels, point, window: (lo, hi), mm_per_px, figures })
+    Ok(QcSheet { image: img, panels, point, window: (lo, hi), window_rule: win.rule, mm_per_px, figures })
 }
 
 fn key_figures(input: &QcInput) -> Result<KeyFigures, QcError> {
@@ -345,7 +428,7 @@ fn draw_title(
     input: &QcInput,
     f: &KeyFigures,
     point: [usize; 3],
-    window: (f32, f32),
+    window: ResolvedWindow,
     mm_per_px: f64,
     opts: &QcOptions,
 ) {
@@ -367,8 +450,19 @@ fn draw_title(
     );
     img.text(x, MARGIN as f32 + 20.0, &line, style(14.0, TEXT, false));
     let settings = format!(
-        "planes through voxel ({}, {}, {})   ·   window {} … {}   ·   {:.2} mm per pixel   ·   grid every {} voxels",
-        point[0], point[1], point[2], window.0, window.1, mm_per_px, opts.grid_every
+        "planes through voxel ({}, {}, {})   ·   window {} … {} ({})   ·   {:.2} mm per pixel   ·   grid every {} voxels",
+        point[0],
+        point[1],
+        point[2],
+        window_value(window.lo),
+        window_value(window.hi),
+        match window.rule {
+            WindowRule::Explicit => "given",
+            WindowRule::Hounsfield => "HU soft tissue",
+            WindowRule::Percentiles => "1st–99th percentile",
+        },
+        mm_per_px,
+        opts.grid_every
     );
     img.text(x, MARGIN as f32 + 38.0, &settings, style(12.0, TEXT_DIM, false));
 }

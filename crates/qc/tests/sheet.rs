@@ -2,7 +2,7 @@
 
 use sinew_grid::{Border, Field, Grid, Image, LabelMap};
 use sinew_qc::colour::FOLD;
-use sinew_qc::{render_qc_sheet, Column, PlaneKind, QcInput, QcOptions, QcSheet};
+use sinew_qc::{render_qc_sheet, Column, PlaneKind, QcInput, QcOptions, QcSheet, Window, WindowRule};
 
 const SHAPE: [usize; 3] = [40, 32, 48];
 const SPACING: [f64; 3] = [2.0, 2.5, 3.0];
@@ -190,4 +190,111 @@ fn sheet_png_is_written_atomically_and_decodes() {
     if let Ok(dir) = std::env::var("SINEW_QC_KEEP") {
         sinew_qc::write_png(&std::path::Path::new(&dir).join("test_sheet.png"), &sheet.image).unwrap();
     }
+}
+
+/// The sheet of the phantom pair with every image mapped by `f` (labels left out, so panel
+/// pixels are grey levels only) and the given window.
+fn render_mapped(f: impl Fn(f32) -> f32, window: Window) -> QcSheet {
+    let map = |img: Image| {
+        let mut img = img;
+        img.as_slice_mut().iter_mut().for_each(|v| *v = f(*v));
+        img
+    };
+    let fixed = map(phantom([20.0, 16.0, 24.0]));
+    let moving = map(phantom([22.0, 15.0, 26.0]));
+    let field = Field::zeros(grid());
+    let jacdet = sinew_transform::jacobian_determinant(&field);
+    let input = QcInput {
+        fixed: &fixed,
+        moving_on_fixed: &moving,
+        warped: &moving,
+        field: &field,
+        jacdet: &jacdet,
+        fixed_labels: None,
+        moving_labels_on_fixed: None,
+        warped_labels: None,
+        title: "fixed a ← moving b".into(),
+    };
+    render_qc_sheet(&input, &QcOptions { point: Some([20, 16, 24]), window, ..QcOptions::default() }).unwrap()
+}
+
+/// Population variance of the red channel over the fixed axial panel.
+fn fixed_panel_variance(sheet: &QcSheet) -> f64 {
+    let p = sheet.panel(PlaneKind::Axial, Column::Fixed);
+    let vals: Vec<f64> = (0..p.plane.height)
+        .flat_map(|v| (0..p.plane.width).map(move |u| (u, v)))
+        .map(|(u, v)| sheet.image.pixel(p.x + u, p.y + v)[0] as f64)
+        .collect();
+    let mean = vals.iter().sum::<f64>() / vals.len() as f64;
+    vals.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / vals.len() as f64
+}
+
+/// The README's prep recipe maps −1000 … 1500 HU to [0, 1].
+fn unit_scaled(v: f32) -> f32 {
+    ((v + 1000.0) / 2500.0).clamp(0.0, 1.0)
+}
+
+#[test]
+fn auto_window_keeps_hounsfield_units() {
+    // The phantom runs from −900 to 300 HU: both ends of the documented rule are reached.
+    let sheet = render_mapped(|v| v, Window::Auto);
+    assert_eq!((sheet.window, sheet.window_rule), ((-200.0, 300.0), WindowRule::Hounsfield));
+}
+
+#[test]
+fn auto_window_shows_a_unit_scaled_scan() {
+    // The fixed scan takes 3 values: air 0.04, tissue 0.44, core 0.52. With the HU window
+    // every one of them lies below −200, so the panel is one flat black.
+    let flat = render_mapped(unit_scaled, Window::CT_SOFT);
+    assert_eq!(fixed_panel_variance(&flat), 0.0);
+    let auto = render_mapped(unit_scaled, Window::Auto);
+    assert_eq!(auto.window_rule, WindowRule::Percentiles);
+    // Foreground = above 0.04 + 0.02·0.48: tissue and core; the window is their 1st … 99th
+    // percentile, so tissue is black and the core white.
+    assert_eq!(auto.window, (unit_scaled(100.0), unit_scaled(300.0)));
+    let var = fixed_panel_variance(&auto);
+    // Air and tissue black, the core (a fifth of the ellipsoid's radius² ) white: a variance
+    // of thousands of grey levels², where the flat sheet has none.
+    assert!(var > 1000.0, "variance {var}");
+}
+
+#[test]
+fn explicit_window_is_honoured() {
+    let sheet = render_mapped(unit_scaled, Window::Range { lo: 0.3, hi: 0.5 });
+    assert_eq!((sheet.window, sheet.window_rule), ((0.3, 0.5), WindowRule::Explicit));
+    // Tissue (0.44) shows at (0.44 − 0.3)/(0.5 − 0.3) = 0.7 of white (definition of a linear
+    // window), the core (0.52) white, air (0.04) black.
+    let p = sheet.panel(PlaneKind::Axial, Column::Fixed);
+    // 0.7 · 255 = 178.5: float rounding may give either neighbour.
+    let count = |levels: std::ops::RangeInclusive<u8>| {
+        (0..p.plane.height)
+            .flat_map(|v| (0..p.plane.width).map(move |u| (u, v)))
+            .filter(|&(u, v)| {
+                let c = sheet.image.pixel(p.x + u, p.y + v);
+                c[0] == c[1] && c[1] == c[2] && levels.contains(&c[0])
+            })
+            .count()
+    };
+    for levels in [0..=0, 178..=179, 255..=255] {
+        assert!(count(levels.clone()) > 100, "grey levels {levels:?}: {} pixels", count(levels.clone()));
+    }
+}
+
+#[test]
+fn percentile_window_follows_its_definition() {
+    // Background 0 and the values 1 … 10000 once each. Foreground: above 0 + 0.02·10000 = 200,
+    // i.e. 201 … 10000 (n = 9800). Ranks round(0.01·9799) = 98 and round(0.99·9799) = 9701
+    // hold 299 and 9902 (numpy.percentile(x, [1, 99], method="nearest") picks the same ranks;
+    // from memory of its documentation).
+    let mut img = Image::filled(grid(), 0.0);
+    for (n, v) in img.as_slice_mut().iter_mut().take(10000).enumerate() {
+        *v = ((n * 7919) % 10000 + 1) as f32;
+    }
+    let w = sinew_qc::resolve_window(Window::Percentiles, &img).unwrap();
+    assert_eq!((w.lo, w.hi, w.rule), (299.0, 9902.0, WindowRule::Percentiles));
+    // Not Hounsfield units (no value ≤ −500): auto takes the same window.
+    assert_eq!(sinew_qc::resolve_window(Window::Auto, &img).unwrap(), w);
+    // A scan that reaches −500 and 300 is taken as HU.
+    img.as_slice_mut()[20000] = -500.0;
+    assert_eq!(sinew_qc::resolve_window(Window::Auto, &img).unwrap().rule, WindowRule::Hounsfield);
 }

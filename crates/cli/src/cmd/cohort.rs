@@ -98,6 +98,10 @@ pub struct CohortArgs {
     /// `sinew register`).
     #[command(flatten)]
     pub scan: crate::cmd::register::ScanArgs,
+    /// Grey window of every pair's qc.png: `lo,hi` in the scans' units, or `auto` (as in
+    /// `sinew register --qc-window`).
+    #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = crate::cmd::qc::window_arg)]
+    pub qc_window: sinew_qc::Window,
     /// Print the pairs of this run (index, fixed, moving) and stop.
     #[arg(long)]
     pub list: bool,
@@ -332,6 +336,7 @@ fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> Reg
         scan: args.scan.clone(),
         threads: None,
         no_qc: false,
+        qc_window: args.qc_window,
         quiet: true,
     }
 }

@@ -61,6 +61,11 @@ pub struct DemoArgs {
     #[arg(long, value_name = "TOML")]
     pub config: Option<PathBuf>,
 
+    /// Grey window of the pairs' QC sheets: `lo,hi` in HU, or `auto` (as in `sinew register
+    /// --qc-window`).
+    #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = window_text)]
+    pub qc_window: String,
+
     /// No progress bar and no per-subject lines.
     #[arg(long, short)]
     pub quiet: bool,
@@ -93,6 +98,11 @@ struct CohortInfo {
 
 fn one() -> f64 {
     1.0
+}
+
+/// `--qc-window`: checked here, passed on to `sinew cohort` as written.
+fn window_text(s: &str) -> Result<String, String> {
+    crate::cmd::qc::parse_window(s).map(|_| s.to_string())
 }
 
 /// `--variation`: a finite number in [0, 10].
@@ -143,6 +153,8 @@ pub fn run(args: DemoArgs) -> Result<()> {
     if let Some(c) = &config {
         cohort.extend(["--config", c.as_str()]);
     }
+    let qc_window = format!("--qc-window={}", args.qc_window);
+    cohort.push(&qc_window);
     if args.quiet {
         cohort.push("--quiet");
     }

@@ -48,10 +48,11 @@ pub struct QcArgs {
     /// Voxel (i,j,k) of the fixed grid the three planes pass through.
     #[arg(long, value_name = "I,J,K", value_delimiter = ',')]
     pub point: Option<Vec<usize>>,
-    /// Grey window `lo,hi` (default -200,300: soft tissue in Hounsfield units), or `auto`
-    /// for the 1st to 99th percentile of the fixed scan.
-    #[arg(long, value_name = "LO,HI|auto", allow_hyphen_values = true)]
-    pub window: Option<String>,
+    /// Grey window `lo,hi` in the fixed scan's units, or `auto`: -200,300 (soft tissue) when
+    /// the fixed scan is in Hounsfield units (its values reach <= -500 and >= 300), else the
+    /// 1st to 99th percentile of its foreground.
+    #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = window_arg)]
+    pub window: Window,
     /// Units of the field's vectors when the file does not say (files written by sinew do).
     #[arg(long, value_enum)]
     pub units: Option<UnitsArg>,
@@ -66,19 +67,25 @@ pub struct QcArgs {
     pub title: Option<String>,
 }
 
-/// Parses `--window`: `lo,hi` or `auto`.
-pub fn parse_window(s: &str) -> anyhow::Result<Window> {
-    if s.eq_ignore_ascii_case("auto") {
-        return Ok(Window::Percentiles);
+/// Parses a grey window (`--window` of `qc`, `--qc-window` of `register`, `cohort`, `demo`):
+/// `lo,hi` in the scan's units, or `auto` (see [`sinew_qc::resolve_window`]).
+pub fn parse_window(s: &str) -> Result<Window, String> {
+    if s.trim().eq_ignore_ascii_case("auto") {
+        return Ok(Window::Auto);
     }
     let parts: Vec<&str> = s.split(',').map(str::trim).collect();
-    let [lo, hi] = parts[..] else { bail!("--window {s}: expected lo,hi (e.g. -200,300) or auto") };
-    let lo: f32 = lo.parse().with_context(|| format!("--window {s}: {lo} is not a number"))?;
-    let hi: f32 = hi.parse().with_context(|| format!("--window {s}: {hi} is not a number"))?;
+    let [lo, hi] = parts[..] else { return Err(format!("{s}: expected lo,hi (e.g. -200,300) or auto")) };
+    let num = |t: &str| t.parse::<f32>().map_err(|_| format!("{s}: {t} is not a number"));
+    let (lo, hi) = (num(lo)?, num(hi)?);
     if !(lo.is_finite() && hi.is_finite() && lo < hi) {
-        bail!("--window {s}: need finite lo < hi");
+        return Err(format!("{s}: need finite lo < hi"));
     }
     Ok(Window::Range { lo, hi })
+}
+
+/// clap's value parser for window options.
+pub fn window_arg(s: &str) -> Result<Window, String> {
+    parse_window(s)
 }
 
 /// A short name for a scan: its file name without `.nii` / `.nii.gz`.
@@ -113,9 +120,13 @@ pub fn run(args: QcArgs) -> anyhow::Result<()> {
         Some(_) => bail!("--point needs three voxel indices i,j,k"),
         None => None,
     };
-    let window = args.window.as_deref().map(parse_window).transpose()?.unwrap_or(Window::CT_SOFT);
-    let opts =
-        QcOptions { point, window, panel_px: args.panel_px, grid_every: args.grid_every, ..QcOptions::default() };
+    let opts = QcOptions {
+        point,
+        window: args.window,
+        panel_px: args.panel_px,
+        grid_every: args.grid_every,
+        ..QcOptions::default()
+    };
     let title = args.title.clone().unwrap_or_else(|| pair_title(&args.fixed, &args.moving));
     let moving_on_fixed = on_fixed_grid(&inputs.moving, &inputs.fixed);
     let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
@@ -125,11 +136,14 @@ pub fn run(args: QcArgs) -> anyhow::Result<()> {
     let sheet = render(&inputs, &moving_on_fixed, &warped, &field, &jacdet, warped_labels.as_ref(), title, &opts)?;
     sinew_qc::write_png(&args.out, &sheet.image)?;
     println!(
-        "wrote {} ({}×{} px, planes through voxel {:?})",
+        "wrote {} ({}×{} px, planes through voxel {:?}, window {} … {} ({}))",
         args.out.display(),
         sheet.image.width(),
         sheet.image.height(),
-        sheet.point
+        sheet.point,
+        sheet.window.0,
+        sheet.window.1,
+        sheet.window_rule.name()
     );
     Ok(())
 }
@@ -175,7 +189,20 @@ fn render(
     Ok(sinew_qc::render_qc_sheet(&input, opts)?)
 }
 
-/// Writes `DIR/qc.png` for a registered pair with the default options and returns its path.
+/// What `report.json` records about a pair's QC sheet.
+#[derive(serde::Serialize, Clone, Debug)]
+pub struct QcRecord {
+    /// The sheet's file.
+    pub path: String,
+    /// The grey window `[lo, hi]` of columns 1–5, in the fixed scan's units.
+    pub window: [f32; 2],
+    /// How it was chosen: `explicit`, `hounsfield` (auto on a scan in HU) or `percentiles`
+    /// (auto otherwise: 1st to 99th percentile of the fixed scan's foreground).
+    pub window_rule: &'static str,
+}
+
+/// Writes `DIR/qc.png` for a registered pair with the default options and the grey `window`,
+/// and returns what the report records of it.
 ///
 /// `fixed` and `moving` are the input paths (for the title); `inputs` the loaded inputs;
 /// `moving_on_fixed` the moving scan on the fixed grid; `warped`, `field`, `jacdet` and
@@ -193,9 +220,10 @@ pub fn qc_for_pair(
     jacdet: &Image,
     warped_labels: Option<&LabelMap>,
     note: Option<&str>,
-) -> anyhow::Result<PathBuf> {
+    window: Window,
+) -> anyhow::Result<QcRecord> {
     let path = out_dir.join("qc.png");
-    let opts = QcOptions::default();
+    let opts = QcOptions { window, ..QcOptions::default() };
     let mut title = pair_title(fixed, moving);
     if let Some(n) = note {
         title = format!("{title}   ·   {n}");
@@ -203,5 +231,9 @@ pub fn qc_for_pair(
     let sheet = render(inputs, moving_on_fixed, warped, field, jacdet, warped_labels, title, &opts)
         .with_context(|| format!("{}: drawing the QC sheet", path.display()))?;
     sinew_qc::write_png(&path, &sheet.image)?;
-    Ok(path)
+    Ok(QcRecord {
+        path: path.display().to_string(),
+        window: [sheet.window.0, sheet.window.1],
+        window_rule: sheet.window_rule.name(),
+    })
 }

@@ -111,6 +111,11 @@ pub struct RegisterArgs {
     /// Do not draw the quality-control sheet `qc.png`.
     #[arg(long)]
     pub no_qc: bool,
+    /// Grey window of qc.png: `lo,hi` in the fixed scan's units, or `auto` (-200,300 when the
+    /// fixed scan is in Hounsfield units, i.e. its values reach <= -500 and >= 300; else the
+    /// 1st to 99th percentile of its foreground). The window used is recorded in report.json.
+    #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = crate::cmd::qc::window_arg)]
+    pub qc_window: sinew_qc::Window,
     /// No progress bar and no summary.
     #[arg(long, short = 'q')]
     pub quiet: bool,
@@ -122,6 +127,7 @@ const REGISTER_EXAMPLES: &str = "Examples:
       --moving-labels demo-data/subject_01_labels.nii.gz -o out/pair_00_01
   sinew register -f a.nii.gz -m b.nii.gz -o out --preset accurate --diffeomorphic
   sinew register -f a.nii.gz -m b.nii.gz -o out --config params.toml --field-units voxel
+  sinew register -f a_unit.nii.gz -m b_unit.nii.gz -o out --qc-window 0.3,0.6
 
 Outputs in DIR: field.nii.gz (displacement, pull: warped(x) = moving(x + u(x))),
 warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz, qc.png (unless --no-qc),
@@ -411,6 +417,8 @@ pub struct Report {
     pub jacobian: sinew_transform::JacobianStats,
     /// Dice per label before and after (with both label maps).
     pub dice: Option<common::DiceReport>,
+    /// The QC sheet and its grey window (absent with --no-qc).
+    pub qc: Option<crate::cmd::qc::QcRecord>,
     /// Files written.
     pub outputs: Vec<String>,
 }
@@ -534,11 +542,12 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         if let Some(path) = &out_paths.affine {
             common::write_json(path, &LinearRecord { matrix: reg.linear_map, initial: &reg.initial, stage: &linear })?;
         }
+        let mut qc = None;
         if out_paths.qc.is_some() {
             // The moving scan in the fixed frame after the linear part of the map (initial
             // alignment and rigid/affine stage); outside the moving scan: NaN, drawn as padding.
             let before = sinew_solve::affine::apply_to_image(&inputs.moving, &linear_map, &inputs.fixed.grid, f32::NAN);
-            crate::cmd::qc::qc_for_pair(
+            qc = Some(crate::cmd::qc::qc_for_pair(
                 &args.out,
                 &args.fixed,
                 &args.moving,
@@ -549,7 +558,8 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
                 &jacdet,
                 warped_labels.as_ref(),
                 Some(&initial_line(&reg)),
-            )?;
+                args.qc_window,
+            )?);
         }
         timings.write_s = t.elapsed().as_secs_f64();
         timings.total_s = t_all.elapsed().as_secs_f64();
@@ -574,6 +584,7 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
             levels: reg.levels.clone(),
             jacobian,
             dice,
+            qc,
             outputs: out_paths.all().iter().map(|p| p.display().to_string()).collect(),
         };
         // The report is written last: its presence marks a complete output folder.
