@@ -22,4 +22,4 @@ pub use canvas::{write_png, Rgb, RgbImage};
 pub use error::QcError;
 pub use plane::{PlaneGeometry, PlaneKind};
 pub use sheet::{render_qc_sheet, Column, KeyFigures, Panel, QcInput, QcOptions, QcSheet, Window};
-pub use sheet::{resolve_window, ResolvedWindow, WindowRule};
+pub use sheet::{resolve_window, whole_body_label, ColourBarLayout, LegendEntry, ResolvedWindow, WindowRule};

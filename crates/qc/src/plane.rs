@@ -112,6 +112,34 @@ pub fn planes(grid: &Grid, point: [usize; 3], mm_per_px: f64) -> [PlaneGeometry;
     [make(PlaneKind::Axial, z, x, y), make(PlaneKind::Coronal, y, x, z), make(PlaneKind::Sagittal, x, y, z)]
 }
 
+/// The anatomical letter of a world direction `v` in NIfTI's RAS+ world (nifti1.h: +x =
+/// Right, +y = Anterior, +z = Superior): the world axis of the largest `|v_a|` names it, `+`
+/// gives R, A or S and `−` gives L, P or I. For the voxel axes (affine columns) these are the
+/// letters `nibabel.aff2axcodes` gives.
+pub fn direction_letter(v: [f64; 3]) -> char {
+    let a = (0..3).max_by(|&a, &b| v[a].abs().total_cmp(&v[b].abs())).expect("three components");
+    let (plus, minus) = [('R', 'L'), ('A', 'P'), ('S', 'I')][a];
+    if v[a] >= 0.0 {
+        plus
+    } else {
+        minus
+    }
+}
+
+/// The letters at the four edges of a panel: the anatomical direction one meets going off
+/// the panel that way.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct EdgeLetters {
+    /// Left edge.
+    pub left: char,
+    /// Right edge.
+    pub right: char,
+    /// Top edge.
+    pub top: char,
+    /// Bottom edge.
+    pub bottom: char,
+}
+
 /// Continuous voxel coordinate of the centre of pixel `u` along an axis of `n` voxels shown
 /// on `w` pixels, reversed when `flip`.
 #[inline]
@@ -150,6 +178,27 @@ impl PlaneGeometry {
         ]
     }
 
+    /// The edge letters of this panel on `grid` (the grid it was laid out for): increasing
+    /// pixel `u` runs along voxel axis `h_axis` (against it when `h_flip`), so its world
+    /// direction is the affine's column `h_axis` times `±1`; the right edge takes that
+    /// direction's [`direction_letter`], the left edge the opposite one, and likewise
+    /// bottom/top with `v_axis`.
+    pub fn edge_letters(&self, grid: &Grid) -> EdgeLetters {
+        let m = grid.affine().linear();
+        let dir = |axis: usize, flip: bool| {
+            let s = if flip { -1.0 } else { 1.0 };
+            [s * m[0][axis], s * m[1][axis], s * m[2][axis]]
+        };
+        let neg = |v: [f64; 3]| v.map(|x| -x);
+        let (u, v) = (dir(self.h_axis, self.h_flip), dir(self.v_axis, self.v_flip));
+        EdgeLetters {
+            left: direction_letter(neg(u)),
+            right: direction_letter(u),
+            top: direction_letter(neg(v)),
+            bottom: direction_letter(v),
+        }
+    }
+
     /// Samples `f` at the centre of every pixel, row by row: `out[v·width + u]`.
     pub fn sample<T>(&self, mut f: impl FnMut([f64; 3]) -> T) -> Vec<T> {
         let mut out = Vec::with_capacity(self.width as usize * self.height as usize);
@@ -184,6 +233,47 @@ mod tests {
         .unwrap();
         let [ax, _, _] = planes(&lps, [5, 5, 5], 1.0);
         assert!(!ax.h_flip && !ax.v_flip);
+    }
+
+    /// The letters of each voxel axis (affine column) as `nibabel.orientations.aff2axcodes`
+    /// gives them (nibabel 5.3.2, run when this test was written): diag(1, 1, 1) → RAS,
+    /// diag(−1, −1, 1) → LPS, [[0, 0, −2], [1, 0, 0], [0, −3, 0]] → AIL.
+    #[test]
+    fn voxel_axis_letters_follow_the_nifti_ras_convention() {
+        let cases: [([[f64; 3]; 3], [char; 3]); 3] = [
+            ([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]], ['R', 'A', 'S']),
+            ([[-1.0, 0.0, 0.0], [0.0, -1.0, 0.0], [0.0, 0.0, 1.0]], ['L', 'P', 'S']),
+            ([[0.0, 0.0, -2.0], [1.0, 0.0, 0.0], [0.0, -3.0, 0.0]], ['A', 'I', 'L']),
+        ];
+        for (m, want) in cases {
+            let got: Vec<char> = (0..3).map(|d| direction_letter([m[0][d], m[1][d], m[2][d]])).collect();
+            assert_eq!(got, want, "{m:?}");
+        }
+    }
+
+    #[test]
+    fn panels_show_the_same_anatomy_letters_for_flipped_affines() {
+        // Radiological display: patient's right on the viewer's left, anterior up (axial),
+        // superior up (coronal, sagittal), anterior on the left of sagittal panels. A grid
+        // stored with flipped axes (LPS-like, or k towards inferior) must show the same.
+        let e = |l: &str| {
+            let c: Vec<char> = l.chars().collect();
+            EdgeLetters { left: c[0], right: c[1], top: c[2], bottom: c[3] }
+        };
+        let want = [e("RLAP"), e("RLSI"), e("APSI")];
+        for diag in [[1.0, 1.0, 1.0], [-1.0, -1.0, 1.0], [1.0, -1.0, -1.0], [-2.0, 1.5, -3.0]] {
+            let lin = [[diag[0], 0.0, 0.0], [0.0, diag[1], 0.0], [0.0, 0.0, diag[2]]];
+            let g = Grid::new([10, 12, 14], Affine::from_parts(lin, [0.0; 3])).unwrap();
+            let got = planes(&g, [5, 6, 7], 1.0).map(|p| p.edge_letters(&g));
+            assert_eq!(got, want, "diagonal {diag:?}");
+        }
+        // A permuted grid (voxel axes A, I, L as above): the letters still match the display.
+        let g = Grid::new(
+            [10, 12, 14],
+            Affine::from_parts([[0.0, 0.0, -2.0], [1.0, 0.0, 0.0], [0.0, -3.0, 0.0]], [0.0; 3]),
+        )
+        .unwrap();
+        assert_eq!(planes(&g, [5, 6, 7], 1.0).map(|p| p.edge_letters(&g)), want);
     }
 
     #[test]

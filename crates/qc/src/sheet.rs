@@ -7,9 +7,15 @@
 //! 6. the Jacobian determinant with a colour bar, folds (`det ≤ 0`) in [`FOLD`](crate::colour::FOLD).
 //!
 //! Columns 1–3 carry the outlines of the fixed labels when they are given, so the eye can check
-//! how well the moving anatomy meets them before and after. A title gives the pair and its key
-//! figures (mean Dice before → after, folding share, SDlogJ, determinant range) and the
-//! settings (point, window, pixel size).
+//! how well the moving anatomy meets them before and after; a legend below the panels gives
+//! each label's colour and name. Every panel has orientation letters at its edges (from the
+//! affine, see [`PlaneGeometry::edge_letters`](crate::plane::PlaneGeometry::edge_letters)); the
+//! Jacobian colour bar has triangles for the values beyond its ends. A title gives the pair
+//! and its key figures (mean Dice before → after without the whole-body label and with it,
+//! folding share, SDlogJ, determinant range) and the settings (point, window and how it was
+//! chosen, pixel size).
+
+use std::collections::BTreeMap;
 
 use sinew_grid::interp::{nearest, trilinear};
 use sinew_grid::{Border, Field, Image, LabelMap};
@@ -41,6 +47,9 @@ pub struct QcInput<'a> {
     pub warped_labels: Option<&'a LabelMap>,
     /// The first title line, e.g. `"fixed subject_00 ← moving subject_01"`.
     pub title: String,
+    /// Label value → structure name (from `labels.json`) for the legend and to find the
+    /// whole-body label; labels without a name are shown by number.
+    pub label_names: Option<&'a BTreeMap<u16, String>>,
 }
 
 /// Intensity window of the grey panels.
@@ -179,14 +188,53 @@ pub struct Panel {
 /// The figures in a sheet's title.
 #[derive(Clone, Debug, PartialEq)]
 pub struct KeyFigures {
-    /// Mean Dice over the fixed labels before registration.
+    /// Mean Dice over all the fixed labels before registration.
     pub dice_before: Option<f64>,
-    /// Mean Dice after registration.
+    /// Mean Dice over all the fixed labels after registration.
     pub dice_after: Option<f64>,
     /// Number of labels scored.
     pub labels: usize,
+    /// The whole-body label (see [`whole_body_label`]), when there is one.
+    pub body_label: Option<u16>,
+    /// Mean Dice before registration over the labels other than the whole-body label (the
+    /// headline figure: the body's large overlap would flatter the mean).
+    pub dice_before_without_body: Option<f64>,
+    /// Mean Dice after registration without the whole-body label.
+    pub dice_after_without_body: Option<f64>,
     /// Jacobian statistics over the whole fixed grid.
     pub jacobian: JacobianStats,
+}
+
+/// One entry of a sheet's label legend.
+#[derive(Clone, Debug, PartialEq)]
+pub struct LegendEntry {
+    /// The label value.
+    pub label: u16,
+    /// The text shown: its name from `labels.json`, else `label N`.
+    pub text: String,
+    /// Left edge of its colour swatch (sheet pixels).
+    pub x: u32,
+    /// Top edge of its colour swatch (sheet pixels).
+    pub y: u32,
+}
+
+/// Side of a legend swatch in pixels.
+pub const LEGEND_SWATCH: u32 = 12;
+
+/// Where the Jacobian colour bar sits on a sheet.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct ColourBarLayout {
+    /// Left edge.
+    pub x: u32,
+    /// Width in pixels.
+    pub width: u32,
+    /// First row of the graded bar (`log₂ det = +range`).
+    pub top: u32,
+    /// One past the last row of the graded bar (`log₂ det = −range`).
+    pub bottom: u32,
+    /// Height of the triangles above and below the bar that stand for values beyond its
+    /// ends (`det > 2^range`: red triangle on top; `0 < det < 2^−range`: blue below).
+    pub triangle: u32,
 }
 
 /// A rendered sheet with its layout.
@@ -206,6 +254,10 @@ pub struct QcSheet {
     pub mm_per_px: f64,
     /// The figures in the title.
     pub figures: KeyFigures,
+    /// The label legend (empty without fixed labels).
+    pub legend: Vec<LegendEntry>,
+    /// The Jacobian colour bar.
+    pub colour_bar: ColourBarLayout,
 }
 
 impl QcSheet {
@@ -232,6 +284,30 @@ fn check_grid(what: &'static str, fixed: &Image, g: &sinew_grid::Grid) -> Result
     } else {
         Err(QcError::GridMismatch { what, expected: fixed.grid.shape(), found: g.shape() })
     }
+}
+
+/// The whole-body label of a label map: the label named `body`, `whole body` or `body
+/// outline` in `names` (any case; `_` and `-` count as spaces), else, when no label is so
+/// named, a label without a name in `names` that holds more than half of all non-zero voxels
+/// (a mask of the whole body that the organs are cut out of or lie in). `None` otherwise.
+pub fn whole_body_label(labels: &LabelMap, names: Option<&BTreeMap<u16, String>>) -> Option<u16> {
+    let is_body = |n: &str| {
+        let n = n.trim().to_lowercase().replace(['_', '-'], " ");
+        matches!(n.as_str(), "body" | "whole body" | "body outline")
+    };
+    let counts = labels.label_counts();
+    let present = |l: u16| counts.iter().any(|&(c, n)| c == l && n > 0);
+    if let Some(names) = names {
+        if let Some((&l, _)) = names.iter().find(|(&l, n)| l != 0 && is_body(n) && present(l)) {
+            return Some(l);
+        }
+    }
+    let total: usize = counts.iter().filter(|c| c.0 != 0).map(|c| c.1).sum();
+    counts
+        .iter()
+        .filter(|&&(l, _)| l != 0 && !names.is_some_and(|m| m.contains_key(&l)))
+        .find(|&&(_, n)| 2 * n > total)
+        .map(|&(l, _)| l)
 }
 
 /// The default point: the rounded mean voxel position of the non-zero labels, else the
@@ -364,11 +440,13 @@ pub fn render_qc_sheet(input: &QcInput, opts: &QcOptions) -> Result<QcSheet, QcE
     let panels_w = Column::ALL.len() as u32 * col_w + (Column::ALL.len() as u32 - 1) * GAP;
     let width = MARGIN + ROW_LABEL_W + panels_w + BAR_W + MARGIN;
     let top = MARGIN + TITLE_H + HEADER_H;
-    let height = top + row_h.iter().sum::<u32>() + 2 * GAP + MARGIN + 18;
+    let panels_bottom = top + row_h.iter().sum::<u32>() + 2 * GAP;
+    let x0 = MARGIN + ROW_LABEL_W;
+    let (legend, legend_h) = legend_layout(input, figures.body_label, x0, panels_bottom + 6, panels_w);
+    let height = panels_bottom + legend_h + MARGIN + 18;
     let mut img = RgbImage::new(width, height, BACKGROUND);
 
     draw_title(&mut img, input, &figures, point, win, mm_per_px, opts);
-    let x0 = MARGIN + ROW_LABEL_W;
     for (c, col) in Column::ALL.iter().enumerate() {
         let pieces = col.header();
         let cx = x0 + c as u32 * (col_w + GAP);
@@ -386,41 +464,121 @@ pub fn render_qc_sheet(input: &QcInput, opts: &QcOptions) -> Result<QcSheet, QcE
         img.text(MARGIN as f32, y as f32 + 4.0, plane.kind.name(), style(14.0, TEXT, true));
         img.text(MARGIN as f32, y as f32 + 22.0, &format!("{axis} = {}", plane.index), style(12.0, TEXT_DIM, false));
         let py = y + (row_h[r] - plane.height) / 2;
+        let letters = plane.edge_letters(grid);
         for (c, &column) in Column::ALL.iter().enumerate() {
             let px = x0 + c as u32 * (col_w + GAP) + (col_w - plane.width) / 2;
             let tile = render_panel(input, plane, column, (lo, hi), opts);
             img.blit(&tile, px as i64, py as i64);
+            draw_edge_letters(&mut img, letters, px, py, plane.width, plane.height);
             panels.push(Panel { column, plane: *plane, x: px, y: py });
         }
         y += row_h[r] + GAP;
     }
     let bar_x = x0 + panels_w + 14;
-    draw_colour_bar(&mut img, bar_x, top, top + row_h.iter().sum::<u32>() + 2 * GAP, opts.jacobian_log2_range);
-    let foot = "orientation: patient's right on the left, anterior/superior up (radiological)";
+    let colour_bar = draw_colour_bar(&mut img, bar_x, top, panels_bottom, opts.jacobian_log2_range);
+    draw_legend(&mut img, &legend);
+    let foot = "letters: R/L right/left, A/P anterior/posterior, S/I superior/inferior (from the NIfTI affine); \
+                patient's right on the left, anterior/superior up (radiological)";
     img.text(x0 as f32, (height - MARGIN - 14) as f32, foot, style(11.0, TEXT_DIM, false));
 
-    Ok(QcSheet { image: img, panels, point, window: (lo, hi), window_rule: win.rule, mm_per_px, figures })
+    Ok(QcSheet {
+        image: img,
+        panels,
+        point,
+        window: (lo, hi),
+        window_rule: win.rule,
+        mm_per_px,
+        figures,
+        legend,
+        colour_bar,
+    })
+}
+
+const LEGEND_ROW: u32 = 20;
+
+/// The legend entries (one per fixed label, ascending; the whole-body label `body` marked as
+/// left out of the headline Dice) laid out left to right from `(x0, y0)` and wrapped at
+/// `width` pixels; returns them with the legend's height.
+fn legend_layout(input: &QcInput, body: Option<u16>, x0: u32, y0: u32, width: u32) -> (Vec<LegendEntry>, u32) {
+    let Some(f) = input.fixed_labels else { return (Vec::new(), 0) };
+    let st = style(12.0, TEXT, false);
+    let (mut x, mut y) = (x0, y0);
+    let mut out = Vec::new();
+    for l in f.labels() {
+        let mut text = match input.label_names.and_then(|m| m.get(&l)) {
+            Some(n) => format!("{l} {n}"),
+            None => format!("label {l}"),
+        };
+        if Some(l) == body {
+            text += " (not in the headline Dice)";
+        }
+        let w = LEGEND_SWATCH + 5 + text_width(&text, st).ceil() as u32 + 16;
+        if x > x0 && x + w > x0 + width {
+            x = x0;
+            y += LEGEND_ROW;
+        }
+        out.push(LegendEntry { label: l, text, x, y });
+        x += w;
+    }
+    let h = if out.is_empty() { 0 } else { y + LEGEND_ROW - y0 };
+    (out, h)
+}
+
+/// Draws the legend: each label's outline colour as a filled swatch, then its text.
+fn draw_legend(img: &mut RgbImage, legend: &[LegendEntry]) {
+    for e in legend {
+        img.fill_rect(e.x as i64, e.y as i64, LEGEND_SWATCH, LEGEND_SWATCH, colour::label_colour(e.label));
+        img.text((e.x + LEGEND_SWATCH + 5) as f32, e.y as f32 - 2.0, &e.text, style(12.0, TEXT, false));
+    }
+}
+
+/// Colour of the orientation letters on the panels.
+pub const LETTER: Rgb = [255, 196, 64];
+
+/// The orientation letters at the middle of each edge of a panel at `(x, y)`, `w × h` pixels.
+fn draw_edge_letters(img: &mut RgbImage, l: crate::plane::EdgeLetters, x: u32, y: u32, w: u32, h: u32) {
+    let st = style(11.0, LETTER, true);
+    let put = |img: &mut RgbImage, c: char, fx: f32, fy: f32| {
+        let t = c.to_string();
+        let tw = text_width(&t, st);
+        img.text(fx - tw / 2.0, fy, &t, st);
+    };
+    let (xf, yf, wf, hf) = (x as f32, y as f32, w as f32, h as f32);
+    put(img, l.left, xf + 6.0, yf + hf / 2.0 - 7.0);
+    put(img, l.right, xf + wf - 6.0, yf + hf / 2.0 - 7.0);
+    put(img, l.top, xf + wf / 2.0, yf + 1.0);
+    put(img, l.bottom, xf + wf / 2.0, yf + hf - 14.0);
 }
 
 fn key_figures(input: &QcInput) -> Result<KeyFigures, QcError> {
     let jacobian = jacobian_stats(input.jacdet, None);
-    let (mut before, mut after, mut labels) = (None, None, 0);
+    let mut k = KeyFigures {
+        dice_before: None,
+        dice_after: None,
+        labels: 0,
+        body_label: None,
+        dice_before_without_body: None,
+        dice_after_without_body: None,
+        jacobian,
+    };
     if let Some(f) = input.fixed_labels {
         let ls = f.labels();
-        labels = ls.len();
-        let mean = |other: Option<&LabelMap>| -> Result<Option<f64>, QcError> {
+        k.labels = ls.len();
+        k.body_label = whole_body_label(f, input.label_names);
+        let means = |other: Option<&LabelMap>| -> Result<(Option<f64>, Option<f64>), QcError> {
             match other {
                 Some(o) => {
                     let d = sinew_score::dice_per_label(f, o, &ls).map_err(|e| QcError::BadOption(e.to_string()))?;
-                    Ok(sinew_score::mean_dice(&d))
+                    let without: Vec<_> = d.iter().filter(|x| Some(x.0) != k.body_label).copied().collect();
+                    Ok((sinew_score::mean_dice(&d), sinew_score::mean_dice(&without)))
                 }
-                None => Ok(None),
+                None => Ok((None, None)),
             }
         };
-        before = mean(input.moving_labels_on_fixed)?;
-        after = mean(input.warped_labels)?;
+        (k.dice_before, k.dice_before_without_body) = means(input.moving_labels_on_fixed)?;
+        (k.dice_after, k.dice_after_without_body) = means(input.warped_labels)?;
     }
-    Ok(KeyFigures { dice_before: before, dice_after: after, labels, jacobian })
+    Ok(k)
 }
 
 fn draw_title(
@@ -438,7 +596,22 @@ fn draw_title(
     let j = &f.jacobian;
     let mut line = String::new();
     if f.labels > 0 {
-        line += &format!("mean Dice {} → {} ({} labels)   ·   ", fmt(f.dice_before), fmt(f.dice_after), f.labels);
+        match f.body_label {
+            Some(b) if f.labels > 1 => {
+                line += &format!(
+                    "mean Dice without the body (label {b}) {} → {} ({} labels); with it {} → {}   ·   ",
+                    fmt(f.dice_before_without_body),
+                    fmt(f.dice_after_without_body),
+                    f.labels - 1,
+                    fmt(f.dice_before),
+                    fmt(f.dice_after)
+                )
+            }
+            _ => {
+                line +=
+                    &format!("mean Dice {} → {} ({} labels)   ·   ", fmt(f.dice_before), fmt(f.dice_after), f.labels)
+            }
+        }
     }
     line += &format!(
         "folding {:.3} % ({} voxels)   ·   SDlogJ {:.3}   ·   det {:.2} … {:.2}",
@@ -590,12 +763,13 @@ fn draw_grid(tile: &mut RgbImage, plane: &PlaneGeometry, field: &Field, every: u
     }
 }
 
-fn draw_colour_bar(img: &mut RgbImage, x: u32, y0: u32, y1: u32, range: f32) {
+fn draw_colour_bar(img: &mut RgbImage, x: u32, y0: u32, y1: u32, range: f32) -> ColourBarLayout {
     let st = style(12.0, TEXT, false);
     img.text(x as f32 - 4.0, y0 as f32 - 18.0, "det", st);
     let fold_h = 18;
-    let bar_top = y0 + 4;
-    let bar_bottom = y1.saturating_sub(fold_h + 30).max(bar_top + 20);
+    let tri = 10;
+    let bar_top = y0 + 4 + tri;
+    let bar_bottom = y1.saturating_sub(fold_h + 30 + tri).max(bar_top + 20);
     let bar_w = 16;
     let n = bar_bottom - bar_top;
     for r in 0..n {
@@ -605,6 +779,16 @@ fn draw_colour_bar(img: &mut RgbImage, x: u32, y0: u32, y1: u32, range: f32) {
         img.fill_rect(x as i64, (bar_top + r) as i64, bar_w, 1, c);
     }
     img.stroke_rect(x as i64 - 1, bar_top as i64 - 1, bar_w + 2, n + 2, TEXT_DIM);
+    // Triangles beyond the ends: values past ±range take the end colours (the map clamps).
+    let (hi_c, lo_c) =
+        (colour::jacobian_colour((2.0 * range).exp2(), range), colour::jacobian_colour((-2.0 * range).exp2(), range));
+    for r in 0..tri {
+        // Row r from the tip: the width grows linearly to the bar's width at the base.
+        let w = ((r + 1) as f32 / tri as f32 * bar_w as f32).round().max(1.0) as u32;
+        let xl = x as i64 + (bar_w - w) as i64 / 2;
+        img.fill_rect(xl, (bar_top - 1 - tri + r) as i64, w, 1, hi_c);
+        img.fill_rect(xl, (bar_bottom + tri - r) as i64, w, 1, lo_c);
+    }
     let ticks = [-range, -range / 2.0, 0.0, range / 2.0, range];
     for t in ticks {
         let r = ((range - t) / (2.0 * range) * n as f32).round() as i64;
@@ -614,9 +798,10 @@ fn draw_colour_bar(img: &mut RgbImage, x: u32, y0: u32, y1: u32, range: f32) {
         let label = if (v - v.round()).abs() < 1e-3 { format!("{:.0}", v) } else { format!("{v:.2}") };
         img.text((x + bar_w + 8) as f32, yy as f32 - 7.0, &label, st);
     }
-    let fy = bar_bottom + 14;
+    let fy = bar_bottom + tri + 14;
     img.fill_rect(x as i64, fy as i64, bar_w, fold_h, FOLD);
     img.stroke_rect(x as i64 - 1, fy as i64 - 1, bar_w + 2, fold_h + 2, TEXT_DIM);
     img.text((x + bar_w + 6) as f32, fy as f32 + 1.0, "≤ 0", st);
     img.text(x as f32 - 4.0, (fy + fold_h + 4) as f32, "(fold)", style(11.0, TEXT_DIM, false));
+    ColourBarLayout { x, width: bar_w, top: bar_top, bottom: bar_bottom, triangle: tri }
 }

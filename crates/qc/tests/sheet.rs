@@ -1,8 +1,9 @@
 //! QC sheet checks: size and proportions, every panel drawn, folds marked exactly.
 
 use sinew_grid::{Border, Field, Grid, Image, LabelMap};
-use sinew_qc::colour::FOLD;
-use sinew_qc::{render_qc_sheet, Column, PlaneKind, QcInput, QcOptions, QcSheet, Window, WindowRule};
+use sinew_qc::colour::{jacobian_colour, label_colour, BACKGROUND, FOLD};
+use sinew_qc::sheet::{LEGEND_SWATCH, LETTER};
+use sinew_qc::{render_qc_sheet, whole_body_label, Column, PlaneKind, QcInput, QcOptions, QcSheet, Window, WindowRule};
 
 const SHAPE: [usize; 3] = [40, 32, 48];
 const SPACING: [f64; 3] = [2.0, 2.5, 3.0];
@@ -83,6 +84,7 @@ fn render(point: Option<[usize; 3]>) -> QcSheet {
         moving_labels_on_fixed: Some(&ml),
         warped_labels: Some(&wl),
         title: "fixed a ← moving b".into(),
+        label_names: None,
     };
     render_qc_sheet(&input, &QcOptions { point, ..QcOptions::default() }).unwrap()
 }
@@ -214,17 +216,22 @@ fn render_mapped(f: impl Fn(f32) -> f32, window: Window) -> QcSheet {
         moving_labels_on_fixed: None,
         warped_labels: None,
         title: "fixed a ← moving b".into(),
+        label_names: None,
     };
     render_qc_sheet(&input, &QcOptions { point: Some([20, 16, 24]), window, ..QcOptions::default() }).unwrap()
 }
 
-/// Population variance of the red channel over the fixed axial panel.
+/// Population variance of the grey levels over the fixed axial panel (its grey pixels: the
+/// orientation letters are coloured).
 fn fixed_panel_variance(sheet: &QcSheet) -> f64 {
     let p = sheet.panel(PlaneKind::Axial, Column::Fixed);
     let vals: Vec<f64> = (0..p.plane.height)
         .flat_map(|v| (0..p.plane.width).map(move |u| (u, v)))
-        .map(|(u, v)| sheet.image.pixel(p.x + u, p.y + v)[0] as f64)
+        .map(|(u, v)| sheet.image.pixel(p.x + u, p.y + v))
+        .filter(|c| c[0] == c[1] && c[1] == c[2])
+        .map(|c| c[0] as f64)
         .collect();
+    assert!(vals.len() > (p.plane.width * p.plane.height) as usize * 9 / 10, "mostly grey pixels");
     let mean = vals.iter().sum::<f64>() / vals.len() as f64;
     vals.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / vals.len() as f64
 }
@@ -297,4 +304,106 @@ fn percentile_window_follows_its_definition() {
     // A scan that reaches −500 and 300 is taken as HU.
     img.as_slice_mut()[20000] = -500.0;
     assert_eq!(sinew_qc::resolve_window(Window::Auto, &img).unwrap().rule, WindowRule::Hounsfield);
+}
+
+/// The phantom pair with labels (1 = tissue shell, 2 = core) and the given label names.
+fn render_named(names: Option<&std::collections::BTreeMap<u16, String>>) -> (QcSheet, LabelMap, LabelMap) {
+    let fixed = phantom([20.0, 16.0, 24.0]);
+    let moving = phantom([22.0, 15.0, 26.0]);
+    let field = Field::zeros(grid());
+    let jacdet = sinew_transform::jacobian_determinant(&field);
+    let (fl, ml) = (labels_of(&fixed), labels_of(&moving));
+    let input = QcInput {
+        fixed: &fixed,
+        moving_on_fixed: &moving,
+        warped: &moving,
+        field: &field,
+        jacdet: &jacdet,
+        fixed_labels: Some(&fl),
+        moving_labels_on_fixed: Some(&ml),
+        warped_labels: Some(&ml),
+        title: "fixed a ← moving b".into(),
+        label_names: names,
+    };
+    (render_qc_sheet(&input, &QcOptions::default()).unwrap(), fl, ml)
+}
+
+/// Dice by its definition 2|A ∩ B| / (|A| + |B|), counted here voxel by voxel.
+fn dice_by_count(a: &LabelMap, b: &LabelMap, l: u16) -> f64 {
+    let (mut na, mut nb, mut both) = (0usize, 0usize, 0usize);
+    for (&x, &y) in a.as_slice().iter().zip(b.as_slice()) {
+        na += (x == l) as usize;
+        nb += (y == l) as usize;
+        both += (x == l && y == l) as usize;
+    }
+    2.0 * both as f64 / (na + nb) as f64
+}
+
+#[test]
+fn legend_shows_each_label_in_its_outline_colour_with_its_name() {
+    let names: std::collections::BTreeMap<u16, String> = [(1, "shell".to_string()), (2, "core".to_string())].into();
+    let (sheet, _, _) = render_named(Some(&names));
+    let texts: Vec<(u16, &str)> = sheet.legend.iter().map(|e| (e.label, e.text.as_str())).collect();
+    assert_eq!(texts, [(1, "1 shell"), (2, "2 core")]);
+    for e in &sheet.legend {
+        // The whole swatch is the label's outline colour.
+        for (dx, dy) in [(0, 0), (LEGEND_SWATCH - 1, LEGEND_SWATCH - 1), (LEGEND_SWATCH / 2, LEGEND_SWATCH / 2)] {
+            assert_eq!(sheet.image.pixel(e.x + dx, e.y + dy), label_colour(e.label), "label {}", e.label);
+        }
+        // Below the panels.
+        assert!(sheet.panels.iter().all(|p| e.y >= p.y + p.plane.height));
+    }
+    // Without names the labels are shown by number.
+    let (sheet, _, _) = render_named(None);
+    let texts: Vec<&str> = sheet.legend.iter().map(|e| e.text.as_str()).collect();
+    assert_eq!(texts[1], "label 2");
+}
+
+#[test]
+fn headline_dice_leaves_out_the_whole_body_label() {
+    let names: std::collections::BTreeMap<u16, String> = [(1, "Body".to_string()), (2, "core".to_string())].into();
+    let (sheet, fl, ml) = render_named(Some(&names));
+    let f = &sheet.figures;
+    assert_eq!(f.body_label, Some(1));
+    let (d1, d2) = (dice_by_count(&fl, &ml, 1), dice_by_count(&fl, &ml, 2));
+    assert!((f.dice_after_without_body.unwrap() - d2).abs() < 1e-12);
+    assert!((f.dice_after.unwrap() - (d1 + d2) / 2.0).abs() < 1e-12);
+    // The legend says which label is left out.
+    assert!(sheet.legend[0].text.contains("not in the headline Dice"), "{}", sheet.legend[0].text);
+    // Without names: label 1 holds most labelled voxels (the shell around the core), so it is
+    // taken as the body; named labels that are not "body" are never taken by size.
+    let counts = fl.label_counts();
+    assert!(counts.iter().find(|c| c.0 == 1).unwrap().1 > counts.iter().find(|c| c.0 == 2).unwrap().1);
+    assert_eq!(whole_body_label(&fl, None), Some(1));
+    let organs: std::collections::BTreeMap<u16, String> = [(1, "liver".to_string()), (2, "core".to_string())].into();
+    assert_eq!(whole_body_label(&fl, Some(&organs)), None);
+}
+
+#[test]
+fn colour_bar_has_triangles_for_values_beyond_its_ends() {
+    let sheet = render(None);
+    let b = sheet.colour_bar;
+    let mid = b.x + b.width / 2;
+    // Above the bar: the colour of det > 2^range (the map's red end, RdBu's 178, 24, 43);
+    // below: the blue end (33, 102, 172).
+    assert_eq!(sheet.image.pixel(mid, b.top - 3), jacobian_colour(8.0, 1.0));
+    assert_eq!(jacobian_colour(8.0, 1.0), [178, 24, 43]);
+    assert_eq!(sheet.image.pixel(mid, b.bottom + 3), [33, 102, 172]);
+    // Triangles, not boxes: near the tips the corners are background.
+    assert_eq!(sheet.image.pixel(b.x, b.top - b.triangle), BACKGROUND);
+    assert_eq!(sheet.image.pixel(b.x + b.width - 1, b.bottom + b.triangle), BACKGROUND);
+}
+
+#[test]
+fn orientation_letters_are_drawn_on_every_panel() {
+    let sheet = render(None);
+    for p in &sheet.panels {
+        // The left-edge letter sits in the panel's left 12 pixels, around the middle row.
+        let (h, mid) = (p.plane.height, p.plane.height / 2);
+        let letter = (mid.saturating_sub(9)..(mid + 9).min(h))
+            .flat_map(|v| (0..12).map(move |u| (u, v)))
+            .filter(|&(u, v)| sheet.image.pixel(p.x + u, p.y + v) == LETTER)
+            .count();
+        assert!(letter > 3, "{:?} {:?}: {letter} letter pixels", p.plane.kind, p.column);
+    }
 }

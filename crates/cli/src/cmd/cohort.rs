@@ -337,8 +337,20 @@ fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> Reg
         threads: None,
         no_qc: false,
         qc_window: args.qc_window,
+        label_names: names_file(args),
         quiet: true,
     }
+}
+
+/// The cohort's `labels.json` (beside the manifest, or in the --all-pairs folder) when there
+/// is one: the pairs' QC sheets name their labels from it.
+fn names_file(args: &CohortArgs) -> Option<PathBuf> {
+    let dir = match (&args.manifest, &args.all_pairs) {
+        (Some(m), _) => m.parent().unwrap_or(Path::new(".")).to_path_buf(),
+        (None, Some(d)) => d.clone(),
+        (None, None) => return None,
+    };
+    Some(dir.join("labels.json")).filter(|p| p.is_file())
 }
 
 impl Subject {

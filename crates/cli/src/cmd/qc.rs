@@ -1,6 +1,7 @@
 //! `sinew qc`: the quality-control sheet (PNG) of any fixed/moving/field triple, and
 //! [`qc_for_pair`], which `register` uses to put `qc.png` beside a pair's outputs.
 
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
@@ -62,6 +63,10 @@ pub struct QcArgs {
     /// Voxels between deformation grid lines.
     #[arg(long, default_value_t = 6, value_name = "N")]
     pub grid_every: usize,
+    /// Label names for the legend: a JSON object `{"1": "liver", ...}` (default: `labels.json`
+    /// beside --fixed-labels when there is one; else labels are shown by number).
+    #[arg(long, value_name = "JSON")]
+    pub label_names: Option<PathBuf>,
     /// Title (default: the file names of the pair).
     #[arg(long)]
     pub title: Option<String>,
@@ -133,7 +138,9 @@ pub fn run(args: QcArgs) -> anyhow::Result<()> {
     let warped = sinew_transform::warp_image_from(&inputs.moving, &field, Border::Constant(pad));
     let warped_labels = inputs.moving_labels.as_ref().map(|l| sinew_transform::warp_labels_from(l, &field));
     let jacdet = sinew_transform::jacobian_determinant(&field);
-    let sheet = render(&inputs, &moving_on_fixed, &warped, &field, &jacdet, warped_labels.as_ref(), title, &opts)?;
+    let names = crate::cmd::score::label_names_for(args.label_names.as_deref(), args.fixed_labels.as_deref())?;
+    let sheet =
+        render(&inputs, &moving_on_fixed, &warped, &field, &jacdet, warped_labels.as_ref(), &names, title, &opts)?;
     sinew_qc::write_png(&args.out, &sheet.image)?;
     println!(
         "wrote {} ({}×{} px, planes through voxel {:?}, window {} … {} ({}))",
@@ -170,6 +177,7 @@ fn render(
     field: &Field,
     jacdet: &Image,
     warped_labels: Option<&LabelMap>,
+    names: &BTreeMap<u16, String>,
     title: String,
     opts: &QcOptions,
 ) -> anyhow::Result<sinew_qc::QcSheet> {
@@ -185,6 +193,7 @@ fn render(
         moving_labels_on_fixed: moving_labels_on_fixed.as_ref(),
         warped_labels,
         title,
+        label_names: Some(names),
     };
     Ok(sinew_qc::render_qc_sheet(&input, opts)?)
 }
@@ -221,6 +230,7 @@ pub fn qc_for_pair(
     warped_labels: Option<&LabelMap>,
     note: Option<&str>,
     window: Window,
+    names: &BTreeMap<u16, String>,
 ) -> anyhow::Result<QcRecord> {
     let path = out_dir.join("qc.png");
     let opts = QcOptions { window, ..QcOptions::default() };
@@ -228,7 +238,7 @@ pub fn qc_for_pair(
     if let Some(n) = note {
         title = format!("{title}   ·   {n}");
     }
-    let sheet = render(inputs, moving_on_fixed, warped, field, jacdet, warped_labels, title, &opts)
+    let sheet = render(inputs, moving_on_fixed, warped, field, jacdet, warped_labels, names, title, &opts)
         .with_context(|| format!("{}: drawing the QC sheet", path.display()))?;
     sinew_qc::write_png(&path, &sheet.image)?;
     Ok(QcRecord {

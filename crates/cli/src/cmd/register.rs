@@ -116,6 +116,10 @@ pub struct RegisterArgs {
     /// 1st to 99th percentile of its foreground). The window used is recorded in report.json.
     #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = crate::cmd::qc::window_arg)]
     pub qc_window: sinew_qc::Window,
+    /// Label names for the QC sheet's legend: a JSON object `{"1": "liver", ...}` (default:
+    /// `labels.json` beside --fixed-labels when there is one; else labels are shown by number).
+    #[arg(long, value_name = "JSON")]
+    pub label_names: Option<PathBuf>,
     /// No progress bar and no summary.
     #[arg(long, short = 'q')]
     pub quiet: bool,
@@ -559,6 +563,7 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
                 warped_labels.as_ref(),
                 Some(&initial_line(&reg)),
                 args.qc_window,
+                &crate::cmd::score::label_names_for(args.label_names.as_deref(), args.fixed_labels.as_deref())?,
             )?);
         }
         timings.write_s = t.elapsed().as_secs_f64();

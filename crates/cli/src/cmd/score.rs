@@ -358,7 +358,22 @@ pub fn label_names(dir: &Path) -> anyhow::Result<BTreeMap<u16, String>> {
     if !path.exists() {
         return Ok(BTreeMap::new());
     }
-    let text = std::fs::read_to_string(&path).with_context(|| format!("{}: cannot read", path.display()))?;
+    label_names_file(&path)
+}
+
+/// The label names for a pair's QC sheet: `file` when given (it must exist), else
+/// `labels.json` beside `fixed_labels` when there is one, else none.
+pub fn label_names_for(file: Option<&Path>, fixed_labels: Option<&Path>) -> anyhow::Result<BTreeMap<u16, String>> {
+    match (file, fixed_labels) {
+        (Some(f), _) => label_names_file(f),
+        (None, Some(l)) => label_names(l.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."))),
+        (None, None) => Ok(BTreeMap::new()),
+    }
+}
+
+/// Label value → name from a `labels.json`-style file (`{"1": "liver", ...}`).
+pub fn label_names_file(path: &Path) -> anyhow::Result<BTreeMap<u16, String>> {
+    let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
     let raw: BTreeMap<String, String> = serde_json::from_str(&text)
         .with_context(|| format!("{}: expected {{\"1\": \"name\", ...}}", path.display()))?;
     raw.into_iter()
