@@ -50,6 +50,9 @@ enum Command {
     Qc(cmd::qc::QcArgs),
     /// Turn a cohort's tables into one self-contained HTML report with plots.
     Report(cmd::report::ReportArgs),
+    /// Search the registration parameters on labelled pairs under a folding and a time
+    /// budget (resumable, shardable), and compare with the default on held-out pairs.
+    Tune(cmd::tune::TuneArgs),
 }
 
 fn main() -> ExitCode {
@@ -82,6 +85,7 @@ fn dispatch(cli: Cli) -> anyhow::Result<()> {
         Command::Cohort(a) => cmd::cohort::run(a),
         Command::Qc(a) => cmd::qc::run(a),
         Command::Report(a) => cmd::report::run(a),
+        Command::Tune(a) => cmd::tune::run(a),
     }
 }
 
@@ -134,6 +138,9 @@ mod tests {
                 }
                 super::Command::Cohort(a) if a.config.is_none() && a.action.is_none() => {
                     crate::cmd::cohort::register_params(&a).unwrap_or_else(|e| panic!("{what}: {e:#}"));
+                }
+                super::Command::Tune(a) if a.config.is_none() => {
+                    crate::cmd::tune::base_params(&a).unwrap_or_else(|e| panic!("{what}: {e:#}"));
                 }
                 _ => {}
             }

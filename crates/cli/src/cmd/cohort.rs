@@ -12,7 +12,7 @@
 //! `score.json` parses; anything else is redone (every file is written atomically, so a
 //! killed run leaves only complete files and stray temporaries, which are removed).
 
-mod manifest;
+pub mod manifest;
 mod table;
 
 use std::path::{Path, PathBuf};

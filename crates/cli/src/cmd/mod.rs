@@ -9,4 +9,5 @@ pub mod qc;
 pub mod register;
 pub mod report;
 pub mod score;
+pub mod tune;
 pub mod warp;
