@@ -203,14 +203,44 @@ pub struct Evaluation {
     pub outcome: Outcome,
 }
 
+/// Scans (fixed + moving voxels) kept in memory between trials, at most.
+const CACHE_VOXELS: usize = 64 << 20;
+
 /// The pair sets and inputs of a run.
 struct Ctx<'a> {
     subjects: &'a [Subject],
     scan: &'a ScanArgs,
     budget: Budget,
+    /// Inputs read once and reused by later trials (fixed, moving subject positions), up to
+    /// [`CACHE_VOXELS`].
+    cache: std::sync::Mutex<BTreeMap<(usize, usize), std::sync::Arc<common::Inputs>>>,
 }
 
 impl Ctx<'_> {
+    /// The inputs of `pair`, read once and kept while the cache has room.
+    fn inputs(&self, pair: &Pair) -> anyhow::Result<std::sync::Arc<common::Inputs>> {
+        let key = (pair.fixed, pair.moving);
+        if let Some(i) = self.cache.lock().expect("no panic while caching").get(&key) {
+            return Ok(i.clone());
+        }
+        let (f, m) = (&self.subjects[pair.fixed], &self.subjects[pair.moving]);
+        let inputs = std::sync::Arc::new(common::Inputs::load_with(
+            &f.image,
+            &m.image,
+            Some(&f.labels),
+            Some(&m.labels),
+            f.mask.as_deref(),
+            self.scan.nan_policy()?,
+        )?);
+        let mut cache = self.cache.lock().expect("no panic while caching");
+        let size = |i: &common::Inputs| i.fixed.grid.len() + i.moving.grid.len();
+        let used: usize = cache.values().map(|i| size(i)).sum();
+        if used + size(&inputs) <= CACHE_VOXELS {
+            cache.insert(key, inputs.clone());
+        }
+        Ok(inputs)
+    }
+
     fn ids(&self, p: &Pair) -> (String, String) {
         (self.subjects[p.fixed].id.clone(), self.subjects[p.moving].id.clone())
     }
@@ -225,20 +255,12 @@ impl Ctx<'_> {
         tick: &dyn Fn(usize),
     ) -> anyhow::Result<(Vec<PairFigures>, Outcome)> {
         let opts = self.scan.options()?;
-        let nan = self.scan.nan_policy()?;
         let mut figures = Vec::with_capacity(pairs.len());
         let mut stopped_early = false;
         for (n, pair) in pairs.iter().enumerate() {
             tick(n);
             let (f, m) = (&self.subjects[pair.fixed], &self.subjects[pair.moving]);
-            let inputs = common::Inputs::load_with(
-                &f.image,
-                &m.image,
-                Some(&f.labels),
-                Some(&m.labels),
-                f.mask.as_deref(),
-                nan,
-            )?;
+            let inputs = self.inputs(pair)?;
             let t = Instant::now();
             let reg = sinew_solve::register_scans(
                 &inputs.fixed,
@@ -347,6 +369,7 @@ pub(crate) fn base_params(args: &TuneArgs) -> anyhow::Result<RegParams> {
         scan: args.scan.clone(),
         threads: None,
         no_qc: true,
+        qc_window: sinew_qc::Window::Auto,
         quiet: true,
     }
     .params()
@@ -378,7 +401,7 @@ pub fn run(args: TuneArgs) -> anyhow::Result<()> {
     };
     let (tuning, held, rule) = split(&args, &every, &subjects)?;
     let budget = Budget { max_folding_pct: args.max_folding, time_per_pair_s: args.time_budget };
-    let ctx = Ctx { subjects: &subjects, scan: &args.scan, budget };
+    let ctx = Ctx { subjects: &subjects, scan: &args.scan, budget, cache: Default::default() };
     let mut search = Search::new(&base, budget, args.trials as usize);
 
     let out = &args.out;

@@ -309,6 +309,10 @@ impl Search {
             self.finished = Some("the starting configuration is not valid".into());
             return;
         }
+        if self.tried.len() >= self.max_trials {
+            self.finished = Some(format!("the trial budget ({}) is spent", self.max_trials));
+            return;
+        }
         if !moved && self.round > 1 {
             if self.steps.iter().any(|&s| s > 1) {
                 self.steps.iter_mut().for_each(|s| *s = (*s / 2).max(1));
@@ -318,9 +322,7 @@ impl Search {
                 return;
             }
         }
-        if self.tried.len() >= self.max_trials {
-            self.finished = Some(format!("the trial budget ({}) is spent", self.max_trials));
-        } else if self.round().is_empty() {
+        if self.round().is_empty() {
             // Every neighbour was tried already or is off the grid: refine, or stop.
             if self.steps.iter().any(|&s| s > 1) {
                 self.steps.iter_mut().for_each(|s| *s = (*s / 2).max(1));
