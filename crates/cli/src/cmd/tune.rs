@@ -370,6 +370,7 @@ pub(crate) fn base_params(args: &TuneArgs) -> anyhow::Result<RegParams> {
         threads: None,
         no_qc: true,
         qc_window: sinew_qc::Window::Auto,
+        label_names: None,
         quiet: true,
     }
     .params()
