@@ -591,7 +591,11 @@ fn draw_title(
     opts: &QcOptions,
 ) {
     let x = MARGIN as f32;
-    img.text(x, MARGIN as f32 - 2.0, &input.title, style(17.0, TEXT, true));
+    // A long title (a pair's note) is set smaller so that it fits the sheet's width.
+    let room = img.width().saturating_sub(2 * MARGIN) as f32;
+    let natural = text_width(&input.title, style(17.0, TEXT, true));
+    let px = if natural > room { (17.0 * room / natural).max(10.0) } else { 17.0 };
+    img.text(x, MARGIN as f32 - 2.0, &input.title, style(px, TEXT, true));
     let fmt = |d: Option<f64>| d.map_or("–".to_string(), |v| format!("{v:.3}"));
     let j = &f.jacobian;
     let mut line = String::new();
