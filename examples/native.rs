@@ -1,5 +1,12 @@
 //! Time and memory of `sinew register` on scans at a scanner's native resolution:
-//! `cargo run --release --example native [-- --threads 2 --out /tmp/sinew-native]`.
+//! `cargo run --release --example native [-- --threads 2 --out /tmp/sinew-native --runs 3
+//! --only thin --uncompressed]`.
+//!
+//! Each run is the whole command from the files (reading both scans and label maps, the
+//! registration, writing the field, warped scan, warped labels, Jacobian and QC sheet on the
+//! fixed scan's native grid); the table gives the median of `--runs` runs (wall clock and the
+//! report's peak resident memory `VmHWM`) and the load average before the first run.
+//! `--uncompressed` writes `.nii` instead of `.nii.gz` (`--out-format nii`).
 //!
 //! Three cases, each a real chest CT and a copy of it pulled through a smooth known field of
 //! at most 10 mm (so the printed endpoint error says the result is still right):
@@ -44,9 +51,18 @@ fn scan_as(native: &Image, shape: [usize; 3], spacing: [f64; 3]) -> Image {
     img
 }
 
-fn write_pair(dir: &Path, name: &str, native: &Image, shape: [usize; 3], spacing: [f64; 3]) -> (PathBuf, PathBuf) {
+/// Labels of a CT by thresholds: 1 = body (above −500 HU), 2 = dense tissue and bone (above
+/// 150 HU), 0 = air.
+fn threshold_labels(img: &Image) -> sinew_grid::LabelMap {
+    let data = img.data.mapv(|v| u16::from(v > -500.0) + u16::from(v > 150.0));
+    sinew_grid::Volume::new(img.grid.clone(), data).unwrap()
+}
+
+fn write_pair(dir: &Path, name: &str, native: &Image, shape: [usize; 3], spacing: [f64; 3]) -> [PathBuf; 4] {
     let f = dir.join(format!("{name}_fixed.nii.gz"));
     let m = dir.join(format!("{name}_moving.nii.gz"));
+    let fl = dir.join(format!("{name}_fixed_labels.nii.gz"));
+    let ml = dir.join(format!("{name}_moving_labels.nii.gz"));
     if !f.exists() || !m.exists() {
         let moving = scan_as(native, shape, spacing);
         let truth = sinew_phantom::known_field(&moving.grid, 10.0);
@@ -55,7 +71,22 @@ fn write_pair(dir: &Path, name: &str, native: &Image, shape: [usize; 3], spacing
         sinew_io::write_image(&f, &fixed).unwrap();
         sinew_io::write_field(&dir.join(format!("{name}_truth.nii.gz")), &truth, sinew_io::FieldUnits::Voxel).unwrap();
     }
-    (f, m)
+    for (img, lab) in [(&f, &fl), (&m, &ml)] {
+        if !lab.exists() {
+            sinew_io::write_labels(lab, &threshold_labels(&sinew_io::read_image(img).unwrap())).unwrap();
+        }
+    }
+    [f, m, fl, ml]
+}
+
+fn median(v: &mut [f64]) -> f64 {
+    v.sort_by(f64::total_cmp);
+    v[v.len() / 2]
+}
+
+fn load_average() -> String {
+    std::fs::read_to_string("/proc/loadavg")
+        .map_or_else(|_| "?".into(), |s| s.split_whitespace().take(3).collect::<Vec<_>>().join(" "))
 }
 
 /// Mean endpoint error (mm) over every 4th voxel of the body (> −500 HU in the fixed scan)
@@ -63,7 +94,8 @@ fn write_pair(dir: &Path, name: &str, native: &Image, shape: [usize; 3], spacing
 fn epe(dir: &Path, name: &str, out: &Path) -> f64 {
     let opts = sinew_io::FieldReadOptions::default();
     let (truth, _) = sinew_io::read_field(&dir.join(format!("{name}_truth.nii.gz")), opts).unwrap();
-    let (u, _) = sinew_io::read_field(&out.join("field.nii.gz"), opts).unwrap();
+    let field = ["field.nii.gz", "field.nii"].map(|n| out.join(n)).into_iter().find(|p| p.exists()).unwrap();
+    let (u, _) = sinew_io::read_field(&field, opts).unwrap();
     let fixed = sinew_io::read_image(&dir.join(format!("{name}_fixed.nii.gz"))).unwrap();
     let lin = u.grid.affine().linear();
     let [_, ny, nz] = u.grid.shape();
@@ -87,12 +119,16 @@ fn main() {
     let mut threads = "2".to_string();
     let mut out = PathBuf::from("/tmp/sinew-native");
     let mut only: Option<String> = None;
+    let mut runs = 3usize;
+    let mut format = "nii.gz";
     let mut args = std::env::args().skip(1);
     while let Some(a) = args.next() {
         match a.as_str() {
             "--threads" => threads = args.next().expect("--threads N"),
             "--out" => out = PathBuf::from(args.next().expect("--out DIR")),
             "--only" => only = args.next(),
+            "--runs" => runs = args.next().expect("--runs N").parse().expect("a count"),
+            "--uncompressed" => format = "nii",
             _ => panic!("unknown argument {a}"),
         }
     }
@@ -105,38 +141,60 @@ fn main() {
         ("thick", [256, 256, 48], [1.14, 1.14, 5.0]),
         ("iso2", [146, 146, 120], [2.0, 2.0, 2.0]),
     ];
-    println!("case   shape            spacing (mm)       voxels   wall_s  register_s  write_s  peak_MB  EPE_mm");
+    println!("load average before the runs: {}", load_average());
+    println!(
+        "case   shape            spacing (mm)       voxels   wall_s  register_s  write_s  peak_MB  EPE_mm  (median of {runs})"
+    );
     for (name, shape, spacing) in cases {
         if only.as_deref().is_some_and(|o| o != name) {
             continue;
         }
-        let (f, m) = write_pair(&out, name, &native, shape, spacing);
+        let [f, m, fl, ml] = write_pair(&out, name, &native, shape, spacing);
         let run_dir = out.join(format!("{name}_out"));
-        let t = Instant::now();
-        let st = Command::new(&bin)
-            .args(["register", "-q", "-j", &threads, "-f"])
-            .arg(&f)
-            .arg("-m")
-            .arg(&m)
-            .arg("-o")
-            .arg(&run_dir)
-            .status()
-            .expect("sinew runs");
-        let wall = t.elapsed().as_secs_f64();
-        assert!(st.success(), "sinew register failed on {name}");
-        let report: serde_json::Value =
-            serde_json::from_slice(&std::fs::read(run_dir.join("report.json")).unwrap()).unwrap();
-        let tm = &report["timings"];
-        let e = epe(&out, name, &run_dir);
+        let (mut wall, mut reg, mut write, mut peak, mut e) = (vec![], vec![], vec![], vec![], 0.0);
+        for run in 0..runs {
+            let _ = std::fs::remove_dir_all(&run_dir);
+            let t = Instant::now();
+            let st = Command::new(&bin)
+                .args(["register", "-q", "-j", &threads, "--out-format", format, "-f"])
+                .arg(&f)
+                .arg("-m")
+                .arg(&m)
+                .arg("--fixed-labels")
+                .arg(&fl)
+                .arg("--moving-labels")
+                .arg(&ml)
+                .arg("-o")
+                .arg(&run_dir)
+                .status()
+                .expect("sinew runs");
+            let w = t.elapsed().as_secs_f64();
+            assert!(st.success(), "sinew register failed on {name}");
+            let report: serde_json::Value =
+                serde_json::from_slice(&std::fs::read(run_dir.join("report.json")).unwrap()).unwrap();
+            let tm = &report["timings"];
+            println!(
+                "{}",
+                serde_json::json!({ "case": name, "run": run, "wall_s": w, "timings": tm, "load": load_average() })
+            );
+            wall.push(w);
+            reg.push(tm["register_s"].as_f64().unwrap_or(f64::NAN));
+            write.push(tm["write_s"].as_f64().unwrap_or(f64::NAN));
+            peak.push(tm["peak_rss_mb"].as_f64().unwrap_or(f64::NAN));
+            if run == 0 {
+                e = epe(&out, name, &run_dir);
+            }
+        }
         println!(
-            "{name:<6} {:<16} {:<18} {:>7.1}M {wall:>7.2} {:>11.2} {:>8.2} {:>8.0} {e:>7.3}",
+            "{name:<6} {:<16} {:<18} {:>7.1}M {:>7.2} {:>11.2} {:>8.2} {:>8.0} {e:>7.3}",
             format!("{shape:?}"),
             format!("{spacing:?}"),
             shape.iter().product::<usize>() as f64 / 1e6,
-            tm["register_s"].as_f64().unwrap_or(f64::NAN),
-            tm["write_s"].as_f64().unwrap_or(f64::NAN),
-            tm["peak_rss_mb"].as_f64().unwrap_or(f64::NAN),
+            median(&mut wall),
+            median(&mut reg),
+            median(&mut write),
+            median(&mut peak),
         );
-        println!("{}", serde_json::json!({ "case": name, "wall_s": wall, "timings": tm, "epe_mm": e }));
     }
+    println!("load average after the runs: {}", load_average());
 }

@@ -80,7 +80,7 @@ fn real_ct_known_warp_in_the_same_and_in_another_frame() {
     let fixed = sinew_transform::warp_image(&moving, &truth, Border::Nearest).unwrap();
 
     let same = run(&fixed, &moving);
-    let (epe, n) = endpoint_error(&same.field, &truth, &fixed, [0.0; 3]);
+    let (epe, n) = endpoint_error(&same.field.to_field(), &truth, &fixed, [0.0; 3]);
     eprintln!(
         "same frame: EPE {epe:.3} mm over {n} voxels; initial applied {} ({})",
         same.initial.applied, same.initial.reason
@@ -92,7 +92,7 @@ fn real_ct_known_warp_in_the_same_and_in_another_frame() {
     let shift = [140.0, -60.0, 90.0];
     let moved = other_frame(&moving, shift);
     let other = run(&fixed, &moved);
-    let (epe2, n2) = endpoint_error(&other.field, &truth, &fixed, shift);
+    let (epe2, n2) = endpoint_error(&other.field.to_field(), &truth, &fixed, shift);
     eprintln!(
         "other frame: EPE {epe2:.3} mm over {n2} voxels; initial {:?} overlap {:.2} -> {:.2} -> {:.2?}",
         other.initial.centre_shift_mm,
@@ -115,9 +115,9 @@ fn real_ct_known_warp_with_moving_scan_on_its_native_grid() {
     let shift = [-35.0, 80.0, -120.0];
     let moved = other_frame(&native, shift);
     let reg = run(&fixed, &moved);
-    assert_eq!(reg.field.grid, fixed.grid, "the field lives on the fixed native grid");
+    assert_eq!(reg.field.grid(), &fixed.grid, "the field lives on the fixed native grid");
     assert_eq!(reg.moving_working.shape, [146, 146, 48]);
-    let (epe, n) = endpoint_error(&reg.field, &truth, &fixed, shift);
+    let (epe, n) = endpoint_error(&reg.field.to_field(), &truth, &fixed, shift);
     eprintln!("native moving grid, other frame: EPE {epe:.3} mm over {n} voxels");
     assert!(epe <= 1.5, "mean endpoint error {epe:.3} mm > 1.5 mm");
 }

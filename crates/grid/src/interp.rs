@@ -178,13 +178,16 @@ pub fn trilinear(data: &[f32], shape: [usize; 3], p: [f32; 3], border: Border) -
             data[((x * ny + y) * nz + z) as usize]
         }
     };
-    let c00 = fetch(x0, y0, z0) * (1.0 - tz) + fetch(x0, y0, z0 + 1) * tz;
-    let c01 = fetch(x0, y0 + 1, z0) * (1.0 - tz) + fetch(x0, y0 + 1, z0 + 1) * tz;
-    let c10 = fetch(x0 + 1, y0, z0) * (1.0 - tz) + fetch(x0 + 1, y0, z0 + 1) * tz;
-    let c11 = fetch(x0 + 1, y0 + 1, z0) * (1.0 - tz) + fetch(x0 + 1, y0 + 1, z0 + 1) * tz;
-    let c0 = c00 * (1.0 - ty) + c01 * ty;
-    let c1 = c10 * (1.0 - ty) + c11 * ty;
-    c0 * (1.0 - tx) + c1 * tx
+    // A corner of weight 0 takes no part (`a·1 + b·0 = a` for finite `b`, so the result is
+    // the same), so a NaN padding value does not leak into a sample exactly on the last voxel.
+    let mix = |a: f32, b: f32, t: f32| if t == 0.0 { a } else { a * (1.0 - t) + b * t };
+    let c00 = mix(fetch(x0, y0, z0), fetch(x0, y0, z0 + 1), tz);
+    let c01 = mix(fetch(x0, y0 + 1, z0), fetch(x0, y0 + 1, z0 + 1), tz);
+    let c10 = mix(fetch(x0 + 1, y0, z0), fetch(x0 + 1, y0, z0 + 1), tz);
+    let c11 = mix(fetch(x0 + 1, y0 + 1, z0), fetch(x0 + 1, y0 + 1, z0 + 1), tz);
+    let c0 = mix(c00, c01, ty);
+    let c1 = mix(c10, c11, ty);
+    mix(c0, c1, tx)
 }
 
 /// Nearest-neighbour lookup of `data` at voxel position `p` (rounding half away from zero);
@@ -207,6 +210,16 @@ pub fn nearest<T: Copy>(data: &[T], shape: [usize; 3], p: [f32; 3], outside: T) 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn nan_padding_does_not_leak_into_samples_on_the_last_voxel() {
+        // Exact fact: on a voxel centre the sample is that voxel's value, whatever the padding.
+        let data: Vec<f32> = (0..24).map(|v| v as f32).collect();
+        let shape = [2, 3, 4];
+        assert_eq!(trilinear(&data, shape, [1.0, 2.0, 3.0], Border::Constant(f32::NAN)), 23.0);
+        assert_eq!(trilinear(&data, shape, [1.0, 0.0, 1.0], Border::Constant(f32::NAN)), 13.0);
+        assert!(trilinear(&data, shape, [1.5, 0.0, 1.0], Border::Constant(f32::NAN)).is_nan());
+    }
 
     #[test]
     fn huge_positions_sample_the_border_without_overflow() {

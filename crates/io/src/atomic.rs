@@ -33,36 +33,81 @@ pub fn write_atomic<F>(path: &Path, fill: F) -> Result<(), IoError>
 where
     F: FnOnce(&mut dyn Write) -> std::io::Result<()>,
 {
-    let tmp = temp_path(path);
-    let result = write_then_rename(path, &tmp, fill);
-    if result.is_err() {
-        let _ = std::fs::remove_file(&tmp);
-    }
-    result
+    let mut file = AtomicFile::create(path)?;
+    fill(&mut file).map_err(|e| IoError::os(path, "cannot write", e))?;
+    file.finish()
 }
 
-fn write_then_rename<F>(path: &Path, tmp: &Path, fill: F) -> Result<(), IoError>
-where
-    F: FnOnce(&mut dyn Write) -> std::io::Result<()>,
-{
-    let file = OpenOptions::new()
-        .write(true)
-        .create_new(true)
-        .open(tmp)
-        .map_err(|e| IoError::os(path, "cannot create a temporary file beside it", e))?;
-    let mut w = BufWriter::with_capacity(1 << 20, file);
-    fill(&mut w).map_err(|e| IoError::os(path, "cannot write", e))?;
-    let file = w.into_inner().map_err(|e| IoError::os(path, "cannot write", e.into_error()))?;
-    file.sync_all().map_err(|e| IoError::os(path, "cannot sync", e))?;
-    drop(file);
-    std::fs::rename(tmp, path).map_err(|e| IoError::os(path, "cannot rename the temporary file into place", e))?;
-    // Make the rename itself durable where the platform allows it (best effort).
-    if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
-        if let Ok(d) = File::open(dir) {
-            let _ = d.sync_all();
+/// An output file being written atomically, for writers that cannot take one closure (several
+/// outputs filled side by side): it writes into a buffered temporary file in the target's
+/// folder; [`AtomicFile::finish`] flushes, fsyncs and renames it onto the target. Dropped
+/// without `finish` (an error on the way), it removes the temporary file and leaves the
+/// target as it was.
+pub struct AtomicFile {
+    path: PathBuf,
+    tmp: PathBuf,
+    w: Option<BufWriter<File>>,
+}
+
+impl AtomicFile {
+    /// Creates the temporary file beside `path`.
+    pub fn create(path: &Path) -> Result<AtomicFile, IoError> {
+        let tmp = temp_path(path);
+        let file = OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&tmp)
+            .map_err(|e| IoError::os(path, "cannot create a temporary file beside it", e))?;
+        Ok(AtomicFile { path: path.to_path_buf(), tmp, w: Some(BufWriter::with_capacity(1 << 20, file)) })
+    }
+
+    /// The target path.
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// Flushes, fsyncs and renames the temporary file onto the target.
+    pub fn finish(mut self) -> Result<(), IoError> {
+        let path = self.path.clone();
+        let w = self.w.take().expect("finish is called once");
+        let file = w.into_inner().map_err(|e| IoError::os(&path, "cannot write", e.into_error()))?;
+        file.sync_all().map_err(|e| IoError::os(&path, "cannot sync", e))?;
+        drop(file);
+        std::fs::rename(&self.tmp, &path)
+            .map_err(|e| IoError::os(&path, "cannot rename the temporary file into place", e))?;
+        // Renamed: nothing left for `drop` to remove.
+        self.tmp = PathBuf::new();
+        // Make the rename itself durable where the platform allows it (best effort).
+        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
+            if let Ok(d) = File::open(dir) {
+                let _ = d.sync_all();
+            }
+        }
+        Ok(())
+    }
+}
+
+impl Write for AtomicFile {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.w.as_mut().expect("not finished").write(buf)
+    }
+
+    fn write_all(&mut self, buf: &[u8]) -> std::io::Result<()> {
+        self.w.as_mut().expect("not finished").write_all(buf)
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.w.as_mut().expect("not finished").flush()
+    }
+}
+
+impl Drop for AtomicFile {
+    fn drop(&mut self) {
+        if !self.tmp.as_os_str().is_empty() {
+            drop(self.w.take());
+            let _ = std::fs::remove_file(&self.tmp);
         }
     }
-    Ok(())
 }
 
 /// Writes `bytes` to `path` atomically (see [`write_atomic`]).

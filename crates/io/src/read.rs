@@ -181,13 +181,45 @@ fn decode<T>(bytes: &[u8], dt: DataType, little: bool, f: impl FnMut(f64) -> T) 
 
 /// Reorders file-order values (i fastest, then j, k, then volumes) into `(nvol, nx, ny, nz)`
 /// standard layout (k fastest).
-fn to_memory_order<T: Clone>(disk: Vec<T>, shape: [usize; 3], nvol: usize) -> Array4<T> {
+fn to_memory_order<T: Copy + Default + Send + Sync>(disk: Vec<T>, shape: [usize; 3], nvol: usize) -> Array4<T> {
     let [nx, ny, nz] = shape;
-    Array4::from_shape_vec((nvol, nz, ny, nx), disk)
-        .expect("decoded length matches the header")
-        .permuted_axes([0, 3, 2, 1])
-        .as_standard_layout()
-        .into_owned()
+    let out = gather_memory_order(shape, nvol, |n| disk[n]);
+    Array4::from_shape_vec((nvol, nx, ny, nz), out).expect("decoded length matches the header")
+}
+
+/// Side of the square tiles of [`gather_memory_order`] (values along `i` and along `k`).
+const TILE: usize = 16;
+
+/// The `(nvol, nx, ny, nz)` standard-layout array whose value at `(v, i, j, k)` is `get(n)`
+/// with `n` the file-order index `((v·nz + k)·ny + j)·nx + i`: a tiled transposition (16 × 16
+/// tiles over `i` and `k` for each `j`), parallel over 16-voxel slabs along `i`.
+fn gather_memory_order<T: Copy + Default + Send + Sync>(
+    shape: [usize; 3],
+    nvol: usize,
+    get: impl Fn(usize) -> T + Sync,
+) -> Vec<T> {
+    use rayon::prelude::*;
+    let [nx, ny, nz] = shape;
+    let slab = ny * nz;
+    let mut out = vec![T::default(); nvol * nx * slab];
+    for (v, vol) in out.chunks_mut((nx * slab).max(1)).enumerate() {
+        vol.par_chunks_mut(TILE * slab).enumerate().for_each(|(b, block)| {
+            let i0 = b * TILE;
+            let ni = block.len() / slab;
+            for j in 0..ny {
+                for k0 in (0..nz).step_by(TILE) {
+                    let k1 = (k0 + TILE).min(nz);
+                    for k in k0..k1 {
+                        let row = ((v * nz + k) * ny + j) * nx + i0;
+                        for di in 0..ni {
+                            block[di * slab + j * nz + k] = get(row + di);
+                        }
+                    }
+                }
+            }
+        });
+    }
+    out
 }
 
 /// Scaled values `slope·raw + inter` as f32 (no scaling when slope is 0 or not finite).
@@ -197,6 +229,36 @@ fn scaled_f32(info: &HeaderInfo, bytes: &[u8]) -> Vec<f32> {
             decode(bytes, info.datatype, info.little_endian, |v| (s * v + i) as f32)
         }
         _ => decode(bytes, info.datatype, info.little_endian, |v| v as f32),
+    }
+}
+
+/// [`scaled_f32`] of `nvol` volumes, decoded straight into memory order (`(nvol, nx, ny, nz)`,
+/// k fastest) without a file-order copy.
+fn scaled_f32_memory_order(info: &HeaderInfo, bytes: &[u8], nvol: usize) -> Vec<f32> {
+    let shape = info.grid.shape();
+    let (s, i) = info.scaling().unwrap_or((1.0, 0.0));
+    let scaled = (s, i) != (1.0, 0.0);
+    macro_rules! go {
+        ($t:ty) => {{
+            const N: usize = std::mem::size_of::<$t>();
+            let conv = if info.little_endian { <$t>::from_le_bytes } else { <$t>::from_be_bytes };
+            let raw = |n: usize| conv(bytes[n * N..n * N + N].try_into().expect("N bytes")) as f64;
+            if scaled {
+                gather_memory_order(shape, nvol, |n| (s * raw(n) + i) as f32)
+            } else {
+                gather_memory_order(shape, nvol, |n| raw(n) as f32)
+            }
+        }};
+    }
+    match info.datatype {
+        DataType::U8 => go!(u8),
+        DataType::I8 => go!(i8),
+        DataType::U16 => go!(u16),
+        DataType::I16 => go!(i16),
+        DataType::U32 => go!(u32),
+        DataType::I32 => go!(i32),
+        DataType::F32 => go!(f32),
+        DataType::F64 => go!(f64),
     }
 }
 
@@ -243,8 +305,10 @@ pub fn read_image_from_bytes(name: &Path, bytes: &[u8], opts: &ReadOptions) -> R
 fn image_from(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<Image, IoError> {
     let (info, bytes) = read_raw(path, src, opts)?;
     single_volume(path, &info)?;
-    let arr = to_memory_order(scaled_f32(&info, &bytes), info.grid.shape(), 1);
-    Volume::new(info.grid, arr.index_axis_move(Axis(0), 0)).map_err(grid_err(path))
+    let arr = Array3::from_shape_vec(info.grid.shape(), scaled_f32_memory_order(&info, &bytes, 1))
+        .expect("decoded length matches the header");
+    drop(bytes);
+    Volume::new(info.grid, arr).map_err(grid_err(path))
 }
 
 /// Reads a label map: values (after scaling, if any) must be whole numbers in 0..=65535;
@@ -318,7 +382,10 @@ fn field_from(path: &Path, src: Source<'_>, opts: FieldReadOptions) -> Result<(F
         });
     }
     let units = info.sinew_field_units().or(opts.units).unwrap_or(FieldUnits::Mm);
-    let comps = to_memory_order(scaled_f32(&info, &bytes), info.grid.shape(), 3); // (3, nx, ny, nz)
+    let [nx, ny, nz] = info.grid.shape();
+    let comps = Array4::from_shape_vec((3, nx, ny, nz), scaled_f32_memory_order(&info, &bytes, 3))
+        .expect("decoded length matches the header"); // (3, nx, ny, nz)
+    drop(bytes);
     let field = match units {
         FieldUnits::Voxel => Field::from_voxel_components(info.grid, comps),
         FieldUnits::Mm => Field::from_world_mm(info.grid, &comps.permuted_axes([1, 2, 3, 0])),

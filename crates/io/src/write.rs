@@ -8,7 +8,7 @@ use flate2::write::GzEncoder;
 use flate2::Compression;
 use sinew_grid::{Field, Grid, Image, LabelMap};
 
-use crate::atomic::write_atomic;
+use crate::atomic::AtomicFile;
 use crate::header::{serialize, DataType, WriteHeader, INTENT_DISPVECT};
 use crate::IoError;
 
@@ -68,24 +68,50 @@ fn check_fits(path: &Path, grid: &Grid) -> Result<(), IoError> {
     Ok(())
 }
 
-/// Writes header bytes then `body`, gzip-compressed (mtime 0, so output is deterministic)
-/// when the name ends in `.gz`.
-fn write_nifti<F>(path: &Path, header: &[u8], body: F) -> Result<(), IoError>
-where
-    F: FnOnce(&mut dyn Write) -> std::io::Result<()>,
-{
-    if is_gz_name(path) {
-        write_atomic(path, |w| {
-            let mut e = ParallelGz::new(w);
-            e.write_all(header)?;
-            body(&mut e)?;
-            e.finish()
-        })
-    } else {
-        write_atomic(path, |w| {
-            w.write_all(header)?;
-            body(w)
-        })
+/// Where the bytes of an output go: the atomic file itself, or through [`ParallelGz`].
+enum Sink {
+    Plain(AtomicFile),
+    Gz(ParallelGz<AtomicFile>),
+}
+
+impl Sink {
+    /// Opens `path` (atomically, gzip when the name ends in `.gz`) and writes `header`.
+    fn create(path: &Path, header: &[u8]) -> Result<Sink, IoError> {
+        let file = AtomicFile::create(path)?;
+        let mut sink = if is_gz_name(path) { Sink::Gz(ParallelGz::new(file)) } else { Sink::Plain(file) };
+        sink.write_all(header).map_err(|e| IoError::os(path, "cannot write", e))?;
+        Ok(sink)
+    }
+
+    fn path(&self) -> &Path {
+        match self {
+            Sink::Plain(f) => f.path(),
+            Sink::Gz(g) => g.out.path(),
+        }
+    }
+
+    /// Writes what is left and renames the file into place.
+    fn finish(self) -> Result<(), IoError> {
+        match self {
+            Sink::Plain(f) => f.finish(),
+            Sink::Gz(g) => {
+                let path = g.out.path().to_path_buf();
+                g.finish().map_err(|e| IoError::os(&path, "cannot write", e))?.finish()
+            }
+        }
+    }
+}
+
+impl Write for Sink {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        match self {
+            Sink::Plain(f) => f.write(buf),
+            Sink::Gz(g) => g.write(buf),
+        }
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        Ok(())
     }
 }
 
@@ -99,14 +125,14 @@ const GZ_CHUNK: usize = 16 << 20;
 /// flate2's `MultiGzDecoder`. Chunk boundaries depend only on the byte count, so the output
 /// does not depend on the thread count; an input of at most one chunk is one member, the
 /// plain single-stream file. At most `2 × threads` chunks are held at once.
-struct ParallelGz<'a> {
-    out: &'a mut dyn Write,
+struct ParallelGz<W: Write> {
+    out: W,
     full: Vec<Vec<u8>>,
     current: Vec<u8>,
 }
 
-impl<'a> ParallelGz<'a> {
-    fn new(out: &'a mut dyn Write) -> ParallelGz<'a> {
+impl<W: Write> ParallelGz<W> {
+    fn new(out: W) -> ParallelGz<W> {
         ParallelGz { out, full: Vec::new(), current: Vec::new() }
     }
 
@@ -121,13 +147,14 @@ impl<'a> ParallelGz<'a> {
         Ok(())
     }
 
-    /// Writes everything left, as the last member(s).
-    fn finish(mut self) -> std::io::Result<()> {
+    /// Writes everything left, as the last member(s); returns the underlying writer.
+    fn finish(mut self) -> std::io::Result<W> {
         if !self.current.is_empty() || self.full.is_empty() {
             let last = std::mem::take(&mut self.current);
             self.full.push(last);
         }
-        self.flush_full()
+        self.flush_full()?;
+        Ok(self.out)
     }
 }
 
@@ -137,7 +164,7 @@ fn gzip_member(data: &[u8]) -> std::io::Result<Vec<u8>> {
     e.finish()
 }
 
-impl Write for ParallelGz<'_> {
+impl<W: Write> Write for ParallelGz<W> {
     fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
         if self.current.capacity() == 0 {
             self.current.reserve_exact(GZ_CHUNK);
@@ -159,21 +186,180 @@ impl Write for ParallelGz<'_> {
     }
 }
 
-/// Writes values as little-endian bytes through a fixed-size buffer.
-fn write_values<T, const N: usize>(
-    w: &mut dyn Write,
-    values: impl Iterator<Item = T>,
-    to_bytes: impl Fn(T) -> [u8; N],
-) -> std::io::Result<()> {
-    let mut buf = Vec::with_capacity(N * 65536);
-    for v in values {
-        buf.extend_from_slice(&to_bytes(v));
-        if buf.len() >= N * 65536 {
-            w.write_all(&buf)?;
-            buf.clear();
+/// Planes (of constant `k`) per block when an in-memory volume is written: about 4 M voxels.
+fn block_planes(nx: usize, ny: usize) -> usize {
+    ((4 << 20) / (nx * ny).max(1)).max(1)
+}
+
+/// Planes `k0 .. k0 + nk` of a volume held in memory order (`(nx, ny, nz)`, `k` fastest) copied
+/// into `out` in disk order (`(nk, ny, nx)`, `i` fastest): a blocked transposition, parallel
+/// over `j`, reading `nk` consecutive values per `(i, j)`.
+fn to_disk_planes<T: Copy + Send + Sync>(src: &[T], shape: [usize; 3], k0: usize, out: &mut [T]) {
+    use ndarray::{ArrayViewMut3, Axis};
+    use rayon::prelude::*;
+    let [nx, ny, nz] = shape;
+    let nk = out.len() / (nx * ny);
+    let mut view = ArrayViewMut3::from_shape((nk, ny, nx), out).expect("whole planes");
+    view.axis_iter_mut(Axis(1)).into_par_iter().enumerate().for_each(|(j, mut rows)| {
+        for (kk, mut row) in rows.outer_iter_mut().enumerate() {
+            let row = row.as_slice_mut().expect("rows are contiguous");
+            for (i, o) in row.iter_mut().enumerate() {
+                *o = src[(i * ny + j) * nz + k0 + kk];
+            }
         }
+    });
+}
+
+/// A NIfTI-1 output written plane by plane (planes of constant `k`, `i` fastest inside a
+/// plane, then `j`), so that a volume computed in slabs never has to be held whole: open it
+/// with [`image_plane_writer`], [`labels_plane_writer`] or [`field_plane_writer`], hand it
+/// every plane in order ([`PlaneWriter::write_f32`] or [`PlaneWriter::write_labels`]), then
+/// [`PlaneWriter::finish`]. The file is written atomically: dropped before `finish` (an error
+/// on the way), it leaves nothing behind. The bytes are exactly those of the whole-volume
+/// writers ([`write_image`], [`write_labels`], [`write_field`]) for the same values.
+pub struct PlaneWriter {
+    sink: Sink,
+    /// Voxels per plane (`nx·ny`).
+    plane: usize,
+    /// Planes still expected (`nz`, times 3 for a field).
+    planes_left: usize,
+    datatype: DataType,
+    bytes: Vec<u8>,
+}
+
+impl PlaneWriter {
+    fn new(path: &Path, header: &[u8], plane: usize, planes: usize, datatype: DataType) -> Result<Self, IoError> {
+        Ok(PlaneWriter { sink: Sink::create(path, header)?, plane, planes_left: planes, datatype, bytes: Vec::new() })
     }
-    w.write_all(&buf)
+
+    fn take(&mut self, n: usize) -> usize {
+        assert!(n % self.plane == 0, "whole planes only ({n} values, {} per plane)", self.plane);
+        let planes = n / self.plane;
+        assert!(planes <= self.planes_left, "more planes than the file holds");
+        self.planes_left -= planes;
+        planes
+    }
+
+    fn put(&mut self) -> Result<(), IoError> {
+        let r = self.sink.write_all(&self.bytes);
+        self.bytes.clear();
+        r.map_err(|e| IoError::os(self.sink.path(), "cannot write", e))
+    }
+
+    /// Writes whole planes of float32 values (image or field writers), `i` fastest.
+    ///
+    /// # Panics
+    /// When `values` is not a whole number of planes, holds more planes than are left, or the
+    /// writer is a label writer (bugs).
+    pub fn write_f32(&mut self, values: &[f32]) -> Result<(), IoError> {
+        assert_eq!(self.datatype, DataType::F32, "a float writer");
+        self.take(values.len());
+        self.bytes.reserve(4 * values.len());
+        for v in values {
+            self.bytes.extend_from_slice(&v.to_le_bytes());
+        }
+        self.put()
+    }
+
+    /// Writes whole planes of labels (label writers), `i` fastest.
+    ///
+    /// # Panics
+    /// As [`PlaneWriter::write_f32`], or when a label exceeds the `max_label` the writer was
+    /// opened with (a bug: the file's datatype was chosen from it).
+    pub fn write_labels(&mut self, values: &[u16]) -> Result<(), IoError> {
+        self.take(values.len());
+        match self.datatype {
+            DataType::U8 => self.bytes.extend(values.iter().map(|&v| u8::try_from(v).expect("label below max_label"))),
+            DataType::U16 => {
+                self.bytes.reserve(2 * values.len());
+                for v in values {
+                    self.bytes.extend_from_slice(&v.to_le_bytes());
+                }
+            }
+            _ => panic!("a label writer"),
+        }
+        self.put()
+    }
+
+    /// Writes what is left and renames the file into place.
+    ///
+    /// # Panics
+    /// When planes are missing (a bug).
+    pub fn finish(self) -> Result<(), IoError> {
+        assert_eq!(self.planes_left, 0, "planes missing from the file");
+        self.sink.finish()
+    }
+}
+
+fn image_header(grid: &Grid) -> Vec<u8> {
+    serialize(
+        grid,
+        &WriteHeader {
+            dims: &grid.shape(),
+            datatype: DataType::F32,
+            intent_code: 0,
+            intent_name: "",
+            descrip: "sinew image",
+        },
+    )
+}
+
+/// A [`PlaneWriter`] for a float32 image on `grid` (the header of [`write_image`]).
+pub fn image_plane_writer(path: &Path, grid: &Grid) -> Result<PlaneWriter, IoError> {
+    check_fits(path, grid)?;
+    let [nx, ny, nz] = grid.shape();
+    PlaneWriter::new(path, &image_header(grid), nx * ny, nz, DataType::F32)
+}
+
+fn label_datatype(max_label: u16) -> DataType {
+    if max_label < 256 {
+        DataType::U8
+    } else {
+        DataType::U16
+    }
+}
+
+fn labels_header(grid: &Grid, datatype: DataType) -> Vec<u8> {
+    serialize(
+        grid,
+        &WriteHeader { dims: &grid.shape(), datatype, intent_code: 0, intent_name: "", descrip: "sinew labels" },
+    )
+}
+
+/// A [`PlaneWriter`] for a label map on `grid` whose largest label is at most `max_label`:
+/// uint8 when it is below 256, else uint16 (as [`write_labels`] chooses from the data).
+pub fn labels_plane_writer(path: &Path, grid: &Grid, max_label: u16) -> Result<PlaneWriter, IoError> {
+    check_fits(path, grid)?;
+    let [nx, ny, nz] = grid.shape();
+    let dt = label_datatype(max_label);
+    PlaneWriter::new(path, &labels_header(grid, dt), nx * ny, nz, dt)
+}
+
+fn field_header(grid: &Grid, units: FieldUnits) -> Vec<u8> {
+    let [nx, ny, nz] = grid.shape();
+    let descrip = match units {
+        FieldUnits::Mm => "sinew displacement, mm along world x y z",
+        FieldUnits::Voxel => "sinew displacement, voxels along i j k",
+    };
+    serialize(
+        grid,
+        &WriteHeader {
+            dims: &[nx, ny, nz, 1, 3],
+            datatype: DataType::F32,
+            intent_code: INTENT_DISPVECT,
+            intent_name: units.intent_name(),
+            descrip,
+        },
+    )
+}
+
+/// A [`PlaneWriter`] for a displacement field on `grid` (the header of [`write_field`]): the
+/// planes of component 0 (`k = 0 … nz−1`), then those of component 1, then component 2, each
+/// value already in `units` (mm along world x, y, z, or voxels along i, j, k).
+pub fn field_plane_writer(path: &Path, grid: &Grid, units: FieldUnits) -> Result<PlaneWriter, IoError> {
+    check_fits(path, grid)?;
+    let [nx, ny, nz] = grid.shape();
+    PlaneWriter::new(path, &field_header(grid, units), nx * ny, 3 * nz, DataType::F32)
 }
 
 /// Writes `img` as float32 NIfTI-1: `.nii`, or `.nii.gz` when the name ends in `.gz`.
@@ -181,35 +367,33 @@ fn write_values<T, const N: usize>(
 /// The header carries the grid's affine in both sform (exact, as float32) and qform (the
 /// nearest rigid map, `qfac` for mirrored grids), codes 1; `pixdim` = spacing in mm.
 pub fn write_image(path: &Path, img: &Image) -> Result<(), IoError> {
-    check_fits(path, &img.grid)?;
-    let header = serialize(
-        &img.grid,
-        &WriteHeader {
-            dims: &img.grid.shape(),
-            datatype: DataType::F32,
-            intent_code: 0,
-            intent_name: "",
-            descrip: "sinew image",
-        },
-    );
-    // On disk i varies fastest: iterate the array with its axes reversed.
-    write_nifti(path, &header, |w| write_values(w, img.data.view().reversed_axes().iter().copied(), f32::to_le_bytes))
+    let mut w = image_plane_writer(path, &img.grid)?;
+    let shape = img.grid.shape();
+    let [nx, ny, nz] = shape;
+    let step = block_planes(nx, ny);
+    let mut buf = vec![0.0f32; nx * ny * step.min(nz)];
+    for k0 in (0..nz).step_by(step) {
+        let planes = &mut buf[..nx * ny * step.min(nz - k0)];
+        to_disk_planes(img.as_slice(), shape, k0, planes);
+        w.write_f32(planes)?;
+    }
+    w.finish()
 }
 
 /// Writes a label map as uint8 when its largest label is below 256, else uint16.
 pub fn write_labels(path: &Path, labels: &LabelMap) -> Result<(), IoError> {
-    check_fits(path, &labels.grid)?;
     let max = labels.as_slice().iter().copied().max().unwrap_or(0);
-    let datatype = if max < 256 { DataType::U8 } else { DataType::U16 };
-    let header = serialize(
-        &labels.grid,
-        &WriteHeader { dims: &labels.grid.shape(), datatype, intent_code: 0, intent_name: "", descrip: "sinew labels" },
-    );
-    let values = labels.data.view().reversed_axes();
-    write_nifti(path, &header, |w| match datatype {
-        DataType::U8 => write_values(w, values.iter().map(|&v| v as u8), |v| [v]),
-        _ => write_values(w, values.iter().copied(), u16::to_le_bytes),
-    })
+    let mut w = labels_plane_writer(path, &labels.grid, max)?;
+    let shape = labels.grid.shape();
+    let [nx, ny, nz] = shape;
+    let step = block_planes(nx, ny);
+    let mut buf = vec![0u16; nx * ny * step.min(nz)];
+    for k0 in (0..nz).step_by(step) {
+        let planes = &mut buf[..nx * ny * step.min(nz - k0)];
+        to_disk_planes(labels.as_slice(), shape, k0, planes);
+        w.write_labels(planes)?;
+    }
+    w.finish()
 }
 
 /// Writes a displacement field as float32 NIfTI-1 of shape `(nx, ny, nz, 1, 3)`, intent
@@ -220,31 +404,38 @@ pub fn write_labels(path: &Path, labels: &LabelMap) -> Result<(), IoError> {
 /// the array axes `i, j, k`. The choice is recorded in `intent_name` (`"sinew-mm"` /
 /// `"sinew-vox"`) and in `descrip`, so [`crate::read_field`] can tell.
 pub fn write_field(path: &Path, field: &Field, units: FieldUnits) -> Result<(), IoError> {
-    check_fits(path, &field.grid)?;
-    let [nx, ny, nz] = field.grid.shape();
-    let descrip = match units {
-        FieldUnits::Mm => "sinew displacement, mm along world x y z",
-        FieldUnits::Voxel => "sinew displacement, voxels along i j k",
-    };
-    let header = serialize(
-        &field.grid,
-        &WriteHeader {
-            dims: &[nx, ny, nz, 1, 3],
-            datatype: DataType::F32,
-            intent_code: INTENT_DISPVECT,
-            intent_name: units.intent_name(),
-            descrip,
-        },
-    );
+    let mut w = field_plane_writer(path, &field.grid, units)?;
+    let shape = field.grid.shape();
+    let [nx, ny, nz] = shape;
+    let step = block_planes(nx, ny);
+    let n = nx * ny * step.min(nz);
+    let mut vox = [vec![0.0f32; n], vec![0.0f32; n], vec![0.0f32; n]];
+    let mut out = vec![0.0f32; n];
+    let lin = field.grid.affine().linear();
     // Disk order: i fastest, then j, k, (t), component.
-    match units {
-        FieldUnits::Mm => {
-            let mm = field.to_world_mm(); // (nx, ny, nz, 3)
-            write_nifti(path, &header, |w| write_values(w, mm.view().reversed_axes().iter().copied(), f32::to_le_bytes))
-        }
-        FieldUnits::Voxel => {
-            let v = field.data.view().permuted_axes([0, 3, 2, 1]); // (3, nz, ny, nx)
-            write_nifti(path, &header, |w| write_values(w, v.iter().copied(), f32::to_le_bytes))
+    for c in 0..3 {
+        for k0 in (0..nz).step_by(step) {
+            let len = nx * ny * step.min(nz - k0);
+            let planes = match units {
+                FieldUnits::Voxel => {
+                    to_disk_planes(field.component(c), shape, k0, &mut out[..len]);
+                    &out[..len]
+                }
+                FieldUnits::Mm => {
+                    for (d, v) in vox.iter_mut().enumerate() {
+                        to_disk_planes(field.component(d), shape, k0, &mut v[..len]);
+                    }
+                    // u_mm = M · u_vox, in f64 as Field::to_world_mm.
+                    let r = lin[c];
+                    for (t, o) in out[..len].iter_mut().enumerate() {
+                        let v = [vox[0][t] as f64, vox[1][t] as f64, vox[2][t] as f64];
+                        *o = (r[0] * v[0] + r[1] * v[1] + r[2] * v[2]) as f32;
+                    }
+                    &out[..len]
+                }
+            };
+            w.write_f32(planes)?;
         }
     }
+    w.finish()
 }

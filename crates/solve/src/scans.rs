@@ -22,7 +22,8 @@
 //! 5. The field is carried to the fixed scan's native grid ([`sinew_grid::resample::resample_field`],
 //!    which keeps the displacement in mm) and composed with `A` exactly
 //!    ([`crate::affine::compose_after`]): for fixed voxel `x`, `G_f·(x + u(x))` is the moving
-//!    scan's world point.
+//!    scan's world point. This happens block by block where the native field is used
+//!    ([`NativeField`]): the whole native field is never held.
 //!
 //! When the fixed and moving scans share one grid that is already the working grid and the
 //! initial alignment is not needed, this is exactly [`crate::register`] on them.
@@ -30,10 +31,11 @@
 use std::time::Instant;
 
 use serde::Serialize;
-use sinew_grid::{resample, Affine, Border, Field, Grid, Image, LabelMap};
+use sinew_grid::{resample, Affine, Border, Grid, Image, LabelMap};
 
 use crate::affine::{self, AffineEstimate, AffineParams};
 use crate::frames::{self, InitialAlignment, InitialMode};
+use crate::native::NativeField;
 use crate::{register, AffineMode, LevelReport, Progress, RegParams, SolveError};
 
 /// Options of [`register_scans`] beyond the registration parameters.
@@ -103,8 +105,15 @@ impl From<&Grid> for GridSummary {
 pub struct ScanRegistration {
     /// The displacement field on the fixed scan's native grid (voxels, pull:
     /// `warped(x) = moving(x + u(x))`, `x + u(x)` in fixed voxel coordinates, which may lie
-    /// outside the fixed grid when the frames differ).
-    pub field: Field,
+    /// outside the fixed grid when the frames differ), evaluated block by block from the
+    /// working-grid field ([`NativeField::to_field`] for the whole field).
+    pub field: NativeField,
+    /// The fixed scan on the working grid (the fixed scan itself when the working grid is its
+    /// own grid): for the QC sheet.
+    pub fixed_working: Image,
+    /// The moving scan on the working grid through the linear map alone, NaN outside the
+    /// moving scan (padding, not border streaks): the QC sheet's "before" panel.
+    pub moving_before: Image,
     /// The fixed working grid.
     pub working: GridSummary,
     /// The moving scan's own working grid.
@@ -128,7 +137,8 @@ pub struct ScanRegistration {
     pub affine_s: f64,
     /// Seconds building the pyramids.
     pub pyramid_s: f64,
-    /// Seconds carrying the field to the native grid (and composing `A`).
+    /// Seconds carrying the field to the native grid (and composing `A`); with the native
+    /// field evaluated on demand, only the working grid's part of the work.
     pub upsample_s: f64,
 }
 
@@ -188,8 +198,11 @@ pub fn register_scans(
         let reg = register(fixed, moving, mask, params, observer)?;
         let a = reg.affine.as_ref().map_or(Affine::IDENTITY, |e| e.affine());
         initial.overlap_final = Some(frames::overlap(fixed, &fmask, moving, &mmask, &a));
+        let moving_before = affine::apply_to_image(moving, &a, &fixed.grid, f32::NAN);
         return Ok(ScanRegistration {
-            field: reg.field,
+            field: NativeField::full(reg.field),
+            fixed_working: fixed.clone(),
+            moving_before,
             working: (&wf).into(),
             moving_working: (&wm).into(),
             working_is_fixed_grid,
@@ -232,19 +245,28 @@ pub fn register_scans(
     let through = Grid::new(wf.shape(), a.compose(wf.affine()))?;
     let mut moving_on_w = resample::resample_image(moving_w, &through, Border::Nearest);
     moving_on_w.grid = wf.clone();
+    let moving_before = affine::apply_to_image(moving_w, &a, &wf, f32::NAN);
     drop(moving_w_own);
     let deformable = RegParams { affine: AffineMode::None, ..params.clone() };
     let reg = register(fixed_w, &moving_on_w, mask_w.as_ref(), &deformable, observer)?;
-    drop((moving_on_w, fixed_w_own, mask_w));
+    drop((moving_on_w, mask_w));
+    let fixed_working = fixed_w_own.unwrap_or_else(|| fixed.clone());
 
     let t = Instant::now();
-    let mut field = if working_is_fixed_grid { reg.field } else { resample::resample_field(&reg.field, &fixed.grid) };
-    if a != Affine::IDENTITY {
-        affine::compose_after(&mut field, &a);
-    }
+    let field = if working_is_fixed_grid {
+        let mut f = reg.field;
+        if a != Affine::IDENTITY {
+            affine::compose_after(&mut f, &a);
+        }
+        NativeField::full(f)
+    } else {
+        NativeField::upsampled(reg.field, &fixed.grid, &a)
+    };
     let upsample_s = reg.upsample_s + t.elapsed().as_secs_f64();
     Ok(ScanRegistration {
         field,
+        fixed_working,
+        moving_before,
         working: (&wf).into(),
         moving_working: (&wm).into(),
         working_is_fixed_grid,

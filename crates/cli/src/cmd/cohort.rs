@@ -321,6 +321,7 @@ fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> Reg
         mask: f.mask.clone(),
         field_units: UnitsArg::Mm,
         npy: false,
+        out_format: crate::cmd::register::OutFormat::NiiGz,
         preset: args.preset.clone(),
         config: args.config.clone(),
         lambda: None,

@@ -213,24 +213,17 @@ pub struct QcRecord {
 /// Writes `DIR/qc.png` for a registered pair with the default options and the grey `window`,
 /// and returns what the report records of it.
 ///
-/// `fixed` and `moving` are the input paths (for the title); `inputs` the loaded inputs;
-/// `moving_on_fixed` the moving scan on the fixed grid; `warped`, `field`, `jacdet` and
-/// `warped_labels` the registration's results on the fixed grid; `note` is appended to the
-/// title (register puts the initial alignment there).
-#[allow(clippy::too_many_arguments)]
-pub fn qc_for_pair(
+/// `fixed` and `moving` are the input paths (for the title); `input` the panels (all on one
+/// grid: `register` draws them on its working grid); `note` is appended to the title
+/// (register puts the initial alignment there).
+pub fn qc_for_pair<'a>(
     out_dir: &Path,
     fixed: &Path,
     moving: &Path,
-    inputs: &Inputs,
-    moving_on_fixed: &Image,
-    warped: &Image,
-    field: &Field,
-    jacdet: &Image,
-    warped_labels: Option<&LabelMap>,
+    mut input: QcInput<'a>,
     note: Option<&str>,
     window: Window,
-    names: &BTreeMap<u16, String>,
+    names: &'a BTreeMap<u16, String>,
 ) -> anyhow::Result<QcRecord> {
     let path = out_dir.join("qc.png");
     let opts = QcOptions { window, ..QcOptions::default() };
@@ -238,7 +231,9 @@ pub fn qc_for_pair(
     if let Some(n) = note {
         title = format!("{title}   ·   {n}");
     }
-    let sheet = render(inputs, moving_on_fixed, warped, field, jacdet, warped_labels, names, title, &opts)
+    input.title = title;
+    input.label_names = Some(names);
+    let sheet = sinew_qc::render_qc_sheet(&input, &opts)
         .with_context(|| format!("{}: drawing the QC sheet", path.display()))?;
     sinew_qc::write_png(&path, &sheet.image)?;
     Ok(QcRecord {

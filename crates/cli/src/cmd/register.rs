@@ -6,7 +6,7 @@ use std::time::Instant;
 use anyhow::{bail, Context};
 use clap::{Args, ValueEnum};
 use serde::Serialize;
-use sinew_grid::{Border, Field, Image, LabelMap};
+use sinew_grid::{Border, Image, LabelMap};
 use sinew_io::FieldUnits;
 use sinew_solve::{InitialMode, Optimiser, RegParams, ScanOptions, ScanRegistration, Similarity, Stage};
 
@@ -60,6 +60,10 @@ pub struct RegisterArgs {
     /// Also write `field.npy` ((nx, ny, nz, 3) float32, voxel units).
     #[arg(long)]
     pub npy: bool,
+    /// File format of the image outputs: nii.gz (gzip level 1, compressed in parallel) or nii
+    /// (uncompressed: larger files, faster to write on native-resolution grids).
+    #[arg(long, value_enum, default_value_t = OutFormat::NiiGz)]
+    pub out_format: OutFormat,
     /// Parameter preset: fast, default or accurate.
     #[arg(long, default_value = "default", value_parser = clap::builder::PossibleValuesParser::new(sinew_solve::PRESETS))]
     pub preset: String,
@@ -134,7 +138,8 @@ const REGISTER_EXAMPLES: &str = "Examples:
   sinew register -f a_unit.nii.gz -m b_unit.nii.gz -o out --qc-window 0.3,0.6
 
 Outputs in DIR: field.nii.gz (displacement, pull: warped(x) = moving(x + u(x))),
-warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz, qc.png (unless --no-qc),
+warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz (.nii with
+--out-format nii), qc.png (unless --no-qc),
 affine.json (when a linear map was used: --affine rigid|affine, or the initial alignment of
 scans in different frames; the 4x4 world-mm matrix, fixed point x -> moving A.x),
 report.json (written last: its presence marks a complete folder).";
@@ -209,6 +214,27 @@ pub enum InitialArg {
     Axes,
     /// Never: trust the world frames.
     Off,
+}
+
+/// `--out-format` values.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum OutFormat {
+    /// gzip-compressed NIfTI-1 (`.nii.gz`).
+    #[value(name = "nii.gz")]
+    NiiGz,
+    /// Uncompressed NIfTI-1 (`.nii`).
+    #[value(name = "nii")]
+    Nii,
+}
+
+impl OutFormat {
+    /// The file name extension.
+    pub fn extension(self) -> &'static str {
+        match self {
+            OutFormat::NiiGz => "nii.gz",
+            OutFormat::Nii => "nii",
+        }
+    }
 }
 
 /// `--optimiser` values.
@@ -481,7 +507,8 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         args.scan.nan_policy()?,
     )?;
     let mut timings = Timings { load_s: t_all.elapsed().as_secs_f64(), ..Timings::default() };
-    let mut out_paths = OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, !args.no_qc);
+    let mut out_paths =
+        OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, !args.no_qc, args.out_format.extension());
     out_paths.affine = Some(args.out.join("affine.json"));
     common::prepare_out_dir(&args.out, &out_paths.all(), &inputs.paths())?;
     let moving_resampled = !inputs.fixed.grid.same_as(&inputs.moving.grid, 1e-3);
@@ -512,18 +539,18 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         );
     }
 
+    // The warped scan and labels and the Jacobian determinant on the fixed native grid,
+    // from the native field evaluated slab by slab (never held whole).
     let t = Instant::now();
     let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
-    let warped = sinew_transform::warp_image_from(&inputs.moving, &reg.field, Border::Constant(pad));
-    let warped_labels = inputs.moving_labels.as_ref().map(|l| sinew_transform::warp_labels_from(l, &reg.field));
+    let native = sinew_solve::native_outputs(&reg.field, &inputs.moving, pad, inputs.moving_labels.as_ref());
     timings.warp_s = t.elapsed().as_secs_f64();
 
     let t = Instant::now();
-    let jacdet = sinew_transform::jacobian_determinant(&reg.field);
-    let jacobian = sinew_transform::jacobian_stats(&jacdet, None);
+    let jacobian = sinew_transform::jacobian_stats(&native.jacdet, None);
     timings.jacobian_s = t.elapsed().as_secs_f64();
 
-    let dice = match (&inputs.fixed_labels, &inputs.moving_labels, &warped_labels) {
+    let dice = match (&inputs.fixed_labels, &inputs.moving_labels, &native.warped_labels) {
         (Some(f), Some(m), Some(w)) => Some(common::dice_report(f, m, w)?),
         _ => None,
     };
@@ -542,29 +569,13 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         e
     });
     let written = (|| -> anyhow::Result<Report> {
-        write_outputs(&out_paths, &reg.field, args.field_units.into(), &warped, warped_labels.as_ref(), &jacdet)?;
+        write_outputs(&out_paths, &reg.field, args.field_units.into(), &native)?;
         if let Some(path) = &out_paths.affine {
             common::write_json(path, &LinearRecord { matrix: reg.linear_map, initial: &reg.initial, stage: &linear })?;
         }
         let mut qc = None;
         if out_paths.qc.is_some() {
-            // The moving scan in the fixed frame after the linear part of the map (initial
-            // alignment and rigid/affine stage); outside the moving scan: NaN, drawn as padding.
-            let before = sinew_solve::affine::apply_to_image(&inputs.moving, &linear_map, &inputs.fixed.grid, f32::NAN);
-            qc = Some(crate::cmd::qc::qc_for_pair(
-                &args.out,
-                &args.fixed,
-                &args.moving,
-                &inputs,
-                &before,
-                &warped,
-                &reg.field,
-                &jacdet,
-                warped_labels.as_ref(),
-                Some(&initial_line(&reg)),
-                args.qc_window,
-                &crate::cmd::score::label_names_for(args.label_names.as_deref(), args.fixed_labels.as_deref())?,
-            )?);
+            qc = Some(draw_qc(args, &inputs, &reg, &native, pad)?);
         }
         timings.write_s = t.elapsed().as_secs_f64();
         timings.total_s = t_all.elapsed().as_secs_f64();
@@ -682,13 +693,13 @@ struct OutPaths {
 }
 
 impl OutPaths {
-    fn new(dir: &Path, labels: bool, npy: bool, qc: bool) -> OutPaths {
+    fn new(dir: &Path, labels: bool, npy: bool, qc: bool, ext: &str) -> OutPaths {
         OutPaths {
-            field: dir.join("field.nii.gz"),
+            field: dir.join(format!("field.{ext}")),
             npy: npy.then(|| dir.join("field.npy")),
-            warped: dir.join("warped.nii.gz"),
-            warped_labels: labels.then(|| dir.join("warped_labels.nii.gz")),
-            jacdet: dir.join("jacdet.nii.gz"),
+            warped: dir.join(format!("warped.{ext}")),
+            warped_labels: labels.then(|| dir.join(format!("warped_labels.{ext}"))),
+            jacdet: dir.join(format!("jacdet.{ext}")),
             qc: qc.then(|| dir.join("qc.png")),
             affine: None,
             report: dir.join("report.json"),
@@ -717,22 +728,116 @@ fn remove_files<P: AsRef<Path>>(paths: impl IntoIterator<Item = P>) {
 
 fn write_outputs(
     p: &OutPaths,
-    field: &Field,
+    field: &sinew_solve::NativeField,
     units: FieldUnits,
-    warped: &Image,
-    warped_labels: Option<&LabelMap>,
-    jacdet: &Image,
+    native: &sinew_solve::NativeOutputs,
 ) -> anyhow::Result<()> {
-    sinew_io::write_field(&p.field, field, units)?;
+    write_native_field(&p.field, field, units)?;
     if let Some(npy) = &p.npy {
-        sinew_io::write_npy_field(npy, field)?;
+        // `.npy` is channel-last: the whole field is formed once (3 × 4 bytes per voxel).
+        sinew_io::write_npy_field(npy, &field.to_field())?;
     }
-    sinew_io::write_image(&p.warped, warped)?;
-    if let (Some(path), Some(l)) = (&p.warped_labels, warped_labels) {
+    sinew_io::write_image(&p.warped, &native.warped)?;
+    if let (Some(path), Some(l)) = (&p.warped_labels, &native.warped_labels) {
         sinew_io::write_labels(path, l)?;
     }
-    sinew_io::write_image(&p.jacdet, jacdet)?;
+    sinew_io::write_image(&p.jacdet, &native.jacdet)?;
     Ok(())
+}
+
+/// Writes the native field block by block of `k` planes (about 4 M voxels each), as
+/// `sinew_io::write_field` would write the whole field: component 0 on every plane, then 1,
+/// then 2, each in `units` (mm: `u_mm = M·u_vox` with `M` the fixed grid's linear part).
+fn write_native_field(path: &Path, field: &sinew_solve::NativeField, units: FieldUnits) -> anyhow::Result<()> {
+    let grid = field.grid();
+    let [nx, ny, nz] = grid.shape();
+    let step = ((4usize << 20) / (nx * ny)).clamp(1, nz);
+    let n = nx * ny * step;
+    let mut vox = [vec![0.0f32; n], vec![0.0f32; n], vec![0.0f32; n]];
+    let mut mm = vec![0.0f32; if units == FieldUnits::Mm { n } else { 0 }];
+    let lin = grid.affine().linear();
+    let mut w = sinew_io::field_plane_writer(path, grid, units)?;
+    for c in 0..3 {
+        for k0 in (0..nz).step_by(step) {
+            let len = nx * ny * step.min(nz - k0);
+            let [a, b, d] = &mut vox;
+            field.fill_planes(k0, [&mut a[..len], &mut b[..len], &mut d[..len]]);
+            match units {
+                FieldUnits::Voxel => w.write_f32(&vox[c][..len])?,
+                FieldUnits::Mm => {
+                    // As Field::to_world_mm: in f64, rounded once.
+                    let r = lin[c];
+                    for (t, o) in mm[..len].iter_mut().enumerate() {
+                        let v = [vox[0][t] as f64, vox[1][t] as f64, vox[2][t] as f64];
+                        *o = (r[0] * v[0] + r[1] * v[1] + r[2] * v[2]) as f32;
+                    }
+                    w.write_f32(&mm[..len])?
+                }
+            }
+        }
+    }
+    w.finish()?;
+    Ok(())
+}
+
+/// `qc.png`, drawn on the working grid (the registration's grid: about 2 mm, enough for a
+/// sheet of three planes): the fixed scan, the moving scan after the linear part of the map
+/// (NaN = padding outside the moving scan), and the moving scan and labels warped by the whole
+/// map at working resolution, with that field and its Jacobian. When the registration ran on
+/// the fixed grid itself, the native outputs are drawn.
+fn draw_qc(
+    args: &RegisterArgs,
+    inputs: &Inputs,
+    reg: &ScanRegistration,
+    native: &sinew_solve::NativeOutputs,
+    pad: f32,
+) -> anyhow::Result<crate::cmd::qc::QcRecord> {
+    let wgrid = &reg.fixed_working.grid;
+    let on_w = |l: &LabelMap| sinew_grid::resample::resample_labels(l, wgrid);
+    let moving_labels_w = inputs.moving_labels.as_ref().map(on_w);
+    let note = initial_line(reg);
+    let names = crate::cmd::score::label_names_for(args.label_names.as_deref(), args.fixed_labels.as_deref())?;
+    if let Some(field) = reg.field.as_full() {
+        let input = sinew_qc::QcInput {
+            fixed: &reg.fixed_working,
+            moving_on_fixed: &reg.moving_before,
+            warped: &native.warped,
+            field,
+            jacdet: &native.jacdet,
+            fixed_labels: inputs.fixed_labels.as_ref(),
+            moving_labels_on_fixed: moving_labels_w.as_ref(),
+            warped_labels: native.warped_labels.as_ref(),
+            title: String::new(),
+            label_names: None,
+        };
+        return crate::cmd::qc::qc_for_pair(
+            &args.out,
+            &args.fixed,
+            &args.moving,
+            input,
+            Some(&note),
+            args.qc_window,
+            &names,
+        );
+    }
+    let field = reg.field.on_working_grid();
+    let warped = sinew_transform::warp_image_from(&inputs.moving, &field, Border::Constant(pad));
+    let warped_labels = inputs.moving_labels.as_ref().map(|l| sinew_transform::warp_labels_from(l, &field));
+    let jacdet = sinew_transform::jacobian_determinant(&field);
+    let fixed_labels = inputs.fixed_labels.as_ref().map(on_w);
+    let input = sinew_qc::QcInput {
+        fixed: &reg.fixed_working,
+        moving_on_fixed: &reg.moving_before,
+        warped: &warped,
+        field: &field,
+        jacdet: &jacdet,
+        fixed_labels: fixed_labels.as_ref(),
+        moving_labels_on_fixed: moving_labels_w.as_ref(),
+        warped_labels: warped_labels.as_ref(),
+        title: String::new(),
+        label_names: None,
+    };
+    crate::cmd::qc::qc_for_pair(&args.out, &args.fixed, &args.moving, input, Some(&note), args.qc_window, &names)
 }
 
 fn print_summary(out: &Path, r: &Report) {

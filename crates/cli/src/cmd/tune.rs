@@ -276,7 +276,7 @@ impl Ctx<'_> {
             let score = sinew_score::score_pair(
                 fl.expect("labels were loaded"),
                 ml.expect("labels were loaded"),
-                sinew_score::Warp::Field(&reg.field),
+                sinew_score::Warp::Field(&reg.field.to_field()),
             )
             .with_context(|| format!("scoring {}__{}", f.id, m.id))?;
             let j = score.jacobian.as_ref();
@@ -346,6 +346,7 @@ pub fn holdout_split(n: usize, fraction: f64, seed: u64) -> Vec<usize> {
 /// The base parameters: preset, config file, `--iterations`.
 pub(crate) fn base_params(args: &TuneArgs) -> anyhow::Result<RegParams> {
     RegisterArgs {
+        out_format: crate::cmd::register::OutFormat::NiiGz,
         fixed: PathBuf::new(),
         moving: PathBuf::new(),
         out: PathBuf::new(),
