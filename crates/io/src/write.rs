@@ -413,7 +413,7 @@ pub fn write_field(path: &Path, field: &Field, units: FieldUnits) -> Result<(), 
     let mut out = vec![0.0f32; n];
     let lin = field.grid.affine().linear();
     // Disk order: i fastest, then j, k, (t), component.
-    for c in 0..3 {
+    for (c, r) in lin.iter().enumerate() {
         for k0 in (0..nz).step_by(step) {
             let len = nx * ny * step.min(nz - k0);
             let planes = match units {
@@ -426,7 +426,6 @@ pub fn write_field(path: &Path, field: &Field, units: FieldUnits) -> Result<(), 
                         to_disk_planes(field.component(d), shape, k0, &mut v[..len]);
                     }
                     // u_mm = M · u_vox, in f64 as Field::to_world_mm.
-                    let r = lin[c];
                     for (t, o) in out[..len].iter_mut().enumerate() {
                         let v = [vox[0][t] as f64, vox[1][t] as f64, vox[2][t] as f64];
                         *o = (r[0] * v[0] + r[1] * v[1] + r[2] * v[2]) as f32;

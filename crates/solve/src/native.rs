@@ -32,6 +32,8 @@ pub struct NativeField {
     kind: Kind,
 }
 
+// One value per registration: the size of the variants does not matter.
+#[allow(clippy::large_enum_variant)]
 #[derive(Clone, Debug)]
 enum Kind {
     /// Held whole (the registration ran on the native grid).
@@ -132,7 +134,7 @@ impl NativeField {
                 let mut f = up.work.clone();
                 if let Some(post_native) = &up.post {
                     // A in world mm, from the native map: A = G·post·G⁻¹.
-                    let a = self.grid.affine().compose(&post_native.compose(&self.grid.inverse_affine()));
+                    let a = self.grid.affine().compose(&post_native.compose(self.grid.inverse_affine()));
                     crate::affine::compose_after(&mut f, &a);
                 }
                 f
@@ -398,12 +400,12 @@ mod tests {
         let mut out = [vec![0.0; nk * nx * ny], vec![0.0; nk * nx * ny], vec![0.0; nk * nx * ny]];
         let [a, b, c] = &mut out;
         nf.fill_planes(k0, [a, b, c]);
-        for d in 0..3 {
+        for (d, o) in out.iter().enumerate() {
             for kk in 0..nk {
                 for j in 0..ny {
                     for i in 0..nx {
                         let want = whole.component(d)[(i * ny + j) * nz + k0 + kk];
-                        assert_eq!(out[d][(kk * ny + j) * nx + i], want);
+                        assert_eq!(o[(kk * ny + j) * nx + i], want);
                     }
                 }
             }
@@ -430,7 +432,7 @@ mod tests {
         let Kind::Upsampled(up) = &nf.kind else { panic!("upsampled") };
         let w = nf.on_working_grid();
         // Exact fact: a working voxel y maps to moving world point A·G_W·(y + v(y)).
-        let a = nf.grid.affine().compose(&up.post.unwrap().compose(&nf.grid.inverse_affine()));
+        let a = nf.grid.affine().compose(&up.post.unwrap().compose(nf.grid.inverse_affine()));
         let g = w.grid.affine();
         let [_, wy, wz] = w.grid.shape();
         let (i, j, k) = (2usize, 3usize, 4usize);
