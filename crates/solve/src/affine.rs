@@ -490,6 +490,25 @@ pub fn apply_to_image(moving: &Image, a: &Affine, target: &Grid, pad: f32) -> Im
     out
 }
 
+/// The fixed voxels whose image under the affine map `a` lies inside the moving scan
+/// (at least `margin` voxels of the moving grid from its outer voxel centres): 1 inside,
+/// 0 where [`apply_to_image`] can only return padding. On `target`.
+pub fn inside_moving(moving: &Grid, a: &Affine, target: &Grid, margin: f64) -> sinew_grid::LabelMap {
+    // Target voxel p sits at moving voxel G_m⁻¹·A·G_t·p.
+    let m = moving.inverse_affine().compose(&a.compose(target.affine()));
+    let shape = moving.shape();
+    let [_, ny, nz] = target.shape();
+    let mut out = sinew_grid::LabelMap::filled(target.clone(), 0);
+    out.data.as_slice_mut().expect("standard layout").par_chunks_mut(ny * nz).enumerate().for_each(|(i, slab)| {
+        for (idx, v) in slab.iter_mut().enumerate() {
+            let q = m.apply([i as f64, (idx / nz) as f64, (idx % nz) as f64]);
+            let inside = (0..3).all(|d| q[d] >= margin && q[d] <= shape[d] as f64 - 1.0 - margin);
+            *v = u16::from(inside);
+        }
+    });
+    out
+}
+
 /// Composes a displacement field on `u.grid` with the affine map applied after it (both
 /// into one pull field): `u'(x) = G⁻¹·A·G·(x + u(x)) − x`, exact (no interpolation).
 pub fn compose_after(u: &mut sinew_grid::Field, a: &Affine) {

@@ -8,6 +8,7 @@ use sinew_grid::{pyramid, resample, Field, Grid, Image, LabelMap};
 use sinew_transform::{jacobian_determinant, jacobian_stats, JacobianStats};
 
 use crate::bspline::BsplineModel;
+use crate::curvature::CurvaturePenalty;
 use crate::fold::FoldPenalty;
 use crate::kernel::{Energy, Problem};
 use crate::param::{GaussianDense, Parametrisation};
@@ -136,6 +137,19 @@ pub fn register(
         let pad = moving.finite_range().map_or(0.0, |r| r.0);
         affine::apply_to_image(moving, &a.affine(), &fixed.grid, pad)
     });
+    // Where the affine map sends a fixed voxel outside the moving scan, the aligned scan holds
+    // padding whose edge would pull the field: those voxels leave the data term (measured on
+    // a 4 mm subject moved by a 20 mm affine: 4.4 mm mean endpoint error with them, see the
+    // affine-composition test). Kept only when at least a tenth of the grid remains.
+    let inside = affine.as_ref().map(|a| affine::inside_moving(&moving.grid, &a.affine(), &fixed.grid, 1.0));
+    let combined =
+        inside.filter(|m| m.as_slice().iter().filter(|&&v| v != 0).count() * 10 >= m.grid.len()).map(|mut m| {
+            if let Some(user) = mask {
+                m.data.zip_mut_with(&user.data, |a, &b| *a = u16::from(*a != 0 && b != 0));
+            }
+            m
+        });
+    let mask = combined.as_ref().or(mask);
     let moving = aligned.as_ref().unwrap_or(moving);
     let affine_s = t0.elapsed().as_secs_f64();
     let t0 = Instant::now();
@@ -152,7 +166,7 @@ pub fn register(
     let mind = MindParams { radius: params.mind_radius, dilation: params.mind_dilation };
     for (step, level) in (params.finest_level..params.levels).rev().enumerate() {
         let desc_grid = fixed_pyr[level].grid.clone();
-        let stride = params.strides[step];
+        let stride = params.stride_for(step, fixed.grid.spacing());
         let lattice = desc_grid.strided(stride);
         observer(Progress { level, stage: Stage::Descriptors, iteration: 0, iterations: 0 });
         let t = Instant::now();
@@ -261,6 +275,9 @@ struct LevelObjective<'a> {
     fold: FoldPenalty,
     fold_weight: f32,
     fold_threshold: f32,
+    /// The curvature penalty and its weight κ in mm² (off when κ = 0).
+    curvature: CurvaturePenalty,
+    curvature_weight: f32,
     evaluations: usize,
 }
 
@@ -280,6 +297,7 @@ impl LevelObjective<'_> {
         };
         let mut e = self.problem.evaluate(as_slice(u), &mut self.grad_u, &mut self.sums);
         e.total += self.fold.evaluate(as_slice(u), self.fold_weight, self.fold_threshold, &mut self.grad_u);
+        e.total += self.curvature.evaluate(as_slice(u), self.curvature_weight, &mut self.grad_u);
         self.param.adjoint(&self.grad_u, grad_theta);
         e.total += self.param.penalty(theta, grad_theta);
         self.evaluations += 1;
@@ -313,6 +331,8 @@ fn optimise_level(
         fold: FoldPenalty::new(grid.shape(), grid.spacing()),
         fold_weight: params.fold_weight,
         fold_threshold: params.fold_threshold,
+        curvature: CurvaturePenalty::new(grid.shape(), grid.spacing()),
+        curvature_weight: params.curvature,
         evaluations: 0,
     };
     let mut theta = vec![0.0f32; n_theta];

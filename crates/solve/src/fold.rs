@@ -33,10 +33,11 @@ pub struct FoldPenalty {
 }
 
 impl FoldPenalty {
-    /// For a lattice of `shape` voxels of `spacing` mm.
+    /// For a lattice of `shape` voxels of `spacing` mm. Allocates nothing until the first
+    /// evaluation with a positive weight.
     pub fn new(shape: [usize; 3], spacing: [f64; 3]) -> FoldPenalty {
         let ratio = std::array::from_fn(|d| std::array::from_fn(|a| (spacing[d] / spacing[a]) as f32));
-        FoldPenalty { shape, ratio, det: vec![0.0; shape.iter().product()] }
+        FoldPenalty { shape, ratio, det: Vec::new() }
     }
 
     /// Neighbours `(minus, plus, 1/step)` of index `i` along an axis of `n` points: forward
@@ -89,6 +90,7 @@ impl FoldPenalty {
         let (uy, uz) = rest.split_at(n);
         let uc = [ux, uy, uz];
         let mut det = std::mem::take(&mut self.det);
+        det.resize(n, 0.0);
         let this = &*self;
         det.par_chunks_mut(ny * nz).enumerate().for_each(|(i, slab)| {
             for j in 0..ny {

@@ -8,6 +8,7 @@
 pub mod adam;
 pub mod affine;
 pub mod bspline;
+pub mod curvature;
 mod driver;
 mod error;
 pub mod fold;

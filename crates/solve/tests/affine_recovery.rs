@@ -84,20 +84,10 @@ fn registration_with_the_affine_stage_holds_the_whole_mapping_in_its_field() {
     let truth = known_map([10.0, 10.0, 10.0], [1.05, 0.95, 1.05], [20.0, -20.0, 20.0]);
     let pad = s.image.finite_range().unwrap().0;
     let moving = apply_to_image(&s.image, &truth.inverse().unwrap(), &s.image.grid, pad);
-    // The deformable stage runs with the earlier, stiffer settings (λ 0.1 at every level, no
-    // folding penalty, MIND-SSC dilation 2, steps 0.5/0.5/0.3/0.2): this test checks that the
-    // affine map is carried into the final field, and on this 4 mm scan the current defaults'
-    // flexible coarse levels move the whole field to 2.32 mm (measured; the affine stage
-    // itself stays at 1.19 mm), which is the deformable stage's accuracy, not the composition's.
-    let params = sinew_solve::RegParams {
-        affine: AffineMode::Affine,
-        lambda: 0.1,
-        lambda_scale: Vec::new(),
-        fold_weight: 0.0,
-        mind_dilation: 2,
-        step_size: vec![0.5, 0.5, 0.3, 0.2],
-        ..sinew_solve::RegParams::preset("fast").unwrap()
-    };
+    // The default deformable settings after the affine stage. Fixed voxels that the affine
+    // map sends outside the moving scan leave the data term (their padding edge pulled the
+    // field: 4.4 mm mean endpoint error on this case before, measured).
+    let params = sinew_solve::RegParams { affine: AffineMode::Affine, ..sinew_solve::RegParams::default() };
     let reg = sinew_solve::register(&s.image, &moving, None, &params, &mut |_| {}).unwrap();
     let est = reg.affine.as_ref().expect("the affine stage ran");
     let (affine_mean, _) = body_error(&est.affine(), &truth, &s.labels);
@@ -123,7 +113,7 @@ fn registration_with_the_affine_stage_holds_the_whole_mapping_in_its_field() {
     }
     let mean = sum / count as f64;
     eprintln!("4 mm subject: affine stage {affine_mean:.3} mm, whole field {mean:.3} mm mean endpoint error");
-    // Half a voxel of this 4 mm scan (its coarse levels cannot reach the 2 mm accuracy of the
-    // test above; measured: affine 1.19 mm, whole field 1.81 mm).
-    assert!(affine_mean < 2.0 && mean < 2.0, "affine {affine_mean:.3} mm, field {mean:.3} mm");
+    // About 1.25 × the measured figures (affine 1.19 mm, whole field 1.48 mm on the project's
+    // 2-core machine).
+    assert!(affine_mean < 1.5 && mean < 1.85, "affine {affine_mean:.3} mm, field {mean:.3} mm");
 }
