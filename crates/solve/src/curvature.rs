@@ -88,68 +88,42 @@ impl CurvaturePenalty {
     }
 }
 
-/// `out[j·nz + k] = h_d · Σ_a c_a · Σ_± (v(x ± e_a) − v(x))` for the slab `i` of `v`.
-fn laplacian_slab(v: &[f32], shape: [usize; 3], c: [f32; 3], i: usize, out: &mut [f32], hd: f32) {
+/// The Neumann 7-point sum `Σ_a c_a · Σ_± (v(x ± e_a) − v(x))` at voxel `(i, j, k)` of `v`
+/// (neighbours beyond the last point dropped).
+#[inline(always)]
+fn neumann_laplacian(v: &[f32], shape: [usize; 3], c: [f32; 3], i: usize, j: usize, k: usize) -> f32 {
     let [nx, ny, nz] = shape;
     let plane = ny * nz;
-    let base = i * plane;
+    let x = i * plane + j * nz + k;
+    let vx = v[x];
+    let mut s = 0.0f32;
+    for (idx, n, step, ca) in [(i, nx, plane, c[0]), (j, ny, nz, c[1]), (k, nz, 1, c[2])] {
+        if idx > 0 {
+            s += ca * (v[x - step] - vx);
+        }
+        if idx + 1 < n {
+            s += ca * (v[x + step] - vx);
+        }
+    }
+    s
+}
+
+/// `out[j·nz + k] = h_d · Δv(i, j, k)` for the slab `i` of `v`.
+fn laplacian_slab(v: &[f32], shape: [usize; 3], c: [f32; 3], i: usize, out: &mut [f32], hd: f32) {
+    let [_, ny, nz] = shape;
     for j in 0..ny {
         for k in 0..nz {
-            let x = base + j * nz + k;
-            let vx = v[x];
-            let mut s = 0.0f32;
-            if i > 0 {
-                s += c[0] * (v[x - plane] - vx);
-            }
-            if i + 1 < nx {
-                s += c[0] * (v[x + plane] - vx);
-            }
-            if j > 0 {
-                s += c[1] * (v[x - nz] - vx);
-            }
-            if j + 1 < ny {
-                s += c[1] * (v[x + nz] - vx);
-            }
-            if k > 0 {
-                s += c[2] * (v[x - 1] - vx);
-            }
-            if k + 1 < nz {
-                s += c[2] * (v[x + 1] - vx);
-            }
-            out[j * nz + k] = hd * s;
+            out[j * nz + k] = hd * neumann_laplacian(v, shape, c, i, j, k);
         }
     }
 }
 
-/// Adds `f · Σ_a c_a · Σ_± (l(x ± e_a) − l(x))` to `out` for the slab `i` of `l`.
+/// Adds `f · Δl(i, j, k)` to `out[j·nz + k]` for the slab `i` of `l`.
 fn add_laplacian_slab(l: &[f32], shape: [usize; 3], c: [f32; 3], i: usize, out: &mut [f32], f: f32) {
-    let [nx, ny, nz] = shape;
-    let plane = ny * nz;
-    let base = i * plane;
+    let [_, ny, nz] = shape;
     for j in 0..ny {
         for k in 0..nz {
-            let x = base + j * nz + k;
-            let lx = l[x];
-            let mut s = 0.0f32;
-            if i > 0 {
-                s += c[0] * (l[x - plane] - lx);
-            }
-            if i + 1 < nx {
-                s += c[0] * (l[x + plane] - lx);
-            }
-            if j > 0 {
-                s += c[1] * (l[x - nz] - lx);
-            }
-            if j + 1 < ny {
-                s += c[1] * (l[x + nz] - lx);
-            }
-            if k > 0 {
-                s += c[2] * (l[x - 1] - lx);
-            }
-            if k + 1 < nz {
-                s += c[2] * (l[x + 1] - lx);
-            }
-            out[j * nz + k] += f * s;
+            out[j * nz + k] += f * neumann_laplacian(l, shape, c, i, j, k);
         }
     }
 }
