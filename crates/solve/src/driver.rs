@@ -117,12 +117,7 @@ pub fn register(
 ) -> Result<Registration, SolveError> {
     params.validate()?;
     fixed.grid.ensure_same(&moving.grid)?;
-    for (which, img) in [("fixed", fixed), ("moving", moving)] {
-        let count = img.count_non_finite();
-        if count > 0 {
-            return Err(SolveError::NonFinite { which, count });
-        }
-    }
+    ensure_finite(fixed, moving)?;
     if let Some(m) = mask {
         fixed.grid.ensure_same(&m.grid)?;
     }
@@ -487,4 +482,15 @@ pub fn local_standardised(img: &Image, sigma: f64) -> Descriptor {
 /// A one-channel "descriptor" holding the intensities.
 fn intensity_descriptor(img: &Image) -> Descriptor {
     Descriptor { grid: img.grid.clone(), channels: 1, data: img.as_slice().to_vec() }
+}
+
+/// Refuses scans holding NaN or infinite voxels, naming the scan and the count.
+pub(crate) fn ensure_finite(fixed: &Image, moving: &Image) -> Result<(), SolveError> {
+    for (which, img) in [("fixed", fixed), ("moving", moving)] {
+        let count = img.count_non_finite();
+        if count > 0 {
+            return Err(SolveError::NonFinite { which, count });
+        }
+    }
+    Ok(())
 }

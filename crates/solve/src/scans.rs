@@ -170,12 +170,7 @@ pub fn register_scans(
             why: format!("{} (must be 0 or a positive number of mm)", opts.working_spacing_mm),
         });
     }
-    for (which, img) in [("fixed", fixed), ("moving", moving)] {
-        let count = img.count_non_finite();
-        if count > 0 {
-            return Err(SolveError::NonFinite { which, count });
-        }
-    }
+    crate::driver::ensure_finite(fixed, moving)?;
     if let Some(m) = mask {
         fixed.grid.ensure_same(&m.grid)?;
     }
