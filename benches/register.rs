@@ -12,6 +12,7 @@ use std::process::Command;
 
 use serde_json::Value;
 use sinew_phantom::{generate, PhantomParams};
+use sinew_testkit::{median, release_binary};
 
 const STAGES: &[&str] = &[
     "load_s",
@@ -29,18 +30,6 @@ const STAGES: &[&str] = &[
     "peak_rss_mb",
 ];
 
-fn binary() -> PathBuf {
-    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
-    let status = Command::new("cargo")
-        .args(["build", "--release", "-q", "-p", "sinew-cli"])
-        .current_dir(root)
-        .status()
-        .expect("cargo runs");
-    assert!(status.success(), "building sinew failed");
-    let target = std::env::var("CARGO_TARGET_DIR").map(PathBuf::from).unwrap_or_else(|_| root.join("target"));
-    target.join("release").join("sinew")
-}
-
 fn write_pair(dir: &Path, shape: [usize; 3]) -> (PathBuf, PathBuf) {
     let spacing = 288.0 / shape[0] as f64 * 1.0;
     let params = PhantomParams { shape, spacing: [spacing; 3], ..PhantomParams::default() };
@@ -55,11 +44,6 @@ fn write_pair(dir: &Path, shape: [usize; 3]) -> (PathBuf, PathBuf) {
     (f, m)
 }
 
-fn median(mut v: Vec<f64>) -> f64 {
-    v.sort_by(|a, b| a.partial_cmp(b).unwrap());
-    v[v.len() / 2]
-}
-
 fn main() {
     let args: Vec<String> = std::env::args().collect();
     let quick = args.iter().any(|a| a == "--quick");
@@ -70,7 +54,7 @@ fn main() {
         .map(|s| s.split(',').map(|x| x.parse().expect("sizes are numbers")).collect())
         .unwrap_or_else(|| vec![72, 144, 288]);
     let runs = if quick { 1 } else { 3 };
-    let sinew = binary();
+    let sinew = release_binary();
     let work = std::env::temp_dir().join("sinew-bench");
     std::fs::create_dir_all(&work).unwrap();
     let cpu = std::fs::read_to_string("/proc/cpuinfo")
@@ -109,7 +93,7 @@ fn main() {
                     serde_json::json!({"shape": shape, "threads": threads, "run": run, "timings": t, "levels": report["levels"].as_array().map(|l| l.iter().map(|x| serde_json::json!({"level": x["level"], "shape": x["shape"], "iterations": x["iterations"], "descriptors_s": x["descriptors_s"], "optimise_s": x["optimise_s"]})).collect::<Vec<_>>())})
                 );
             }
-            rows.push((shape, threads, per_stage.into_iter().map(median).collect::<Vec<f64>>()));
+            rows.push((shape, threads, per_stage.iter_mut().map(|v| median(v)).collect::<Vec<f64>>()));
         }
     }
     println!("\nmedian of {runs} run(s), seconds (peak_rss_mb in MB):");

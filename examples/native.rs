@@ -26,18 +26,7 @@ use std::process::Command;
 use std::time::Instant;
 
 use sinew_grid::{resample, Affine, Border, Grid, Image};
-
-fn binary() -> PathBuf {
-    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
-    let status = Command::new("cargo")
-        .args(["build", "--release", "-q", "-p", "sinew-cli"])
-        .current_dir(root)
-        .status()
-        .expect("cargo runs");
-    assert!(status.success(), "building sinew failed");
-    let target = std::env::var("CARGO_TARGET_DIR").map(PathBuf::from).unwrap_or_else(|_| root.join("target"));
-    target.join("release").join("sinew")
-}
+use sinew_testkit::{load_average, median, release_binary, KnownWarp};
 
 /// The scan resampled to `shape` over its own field of view, then labelled with `spacing`
 /// (directions kept): a body scaled to that spacing.
@@ -64,12 +53,11 @@ fn write_pair(dir: &Path, name: &str, native: &Image, shape: [usize; 3], spacing
     let fl = dir.join(format!("{name}_fixed_labels.nii.gz"));
     let ml = dir.join(format!("{name}_moving_labels.nii.gz"));
     if !f.exists() || !m.exists() {
-        let moving = scan_as(native, shape, spacing);
-        let truth = sinew_phantom::known_field(&moving.grid, 10.0);
-        let fixed = sinew_transform::warp_image(&moving, &truth, Border::Nearest).unwrap();
-        sinew_io::write_image(&m, &moving).unwrap();
-        sinew_io::write_image(&f, &fixed).unwrap();
-        sinew_io::write_field(&dir.join(format!("{name}_truth.nii.gz")), &truth, sinew_io::FieldUnits::Voxel).unwrap();
+        let case = KnownWarp::new(scan_as(native, shape, spacing), 10.0, 0.0);
+        sinew_io::write_image(&m, &case.moving).unwrap();
+        sinew_io::write_image(&f, &case.fixed).unwrap();
+        let truth = dir.join(format!("{name}_truth.nii.gz"));
+        sinew_io::write_field(&truth, &case.truth, sinew_io::FieldUnits::Voxel).unwrap();
     }
     for (img, lab) in [(&f, &fl), (&m, &ml)] {
         if !lab.exists() {
@@ -77,16 +65,6 @@ fn write_pair(dir: &Path, name: &str, native: &Image, shape: [usize; 3], spacing
         }
     }
     [f, m, fl, ml]
-}
-
-fn median(v: &mut [f64]) -> f64 {
-    v.sort_by(f64::total_cmp);
-    v[v.len() / 2]
-}
-
-fn load_average() -> String {
-    std::fs::read_to_string("/proc/loadavg")
-        .map_or_else(|_| "?".into(), |s| s.split_whitespace().take(3).collect::<Vec<_>>().join(" "))
 }
 
 /// Mean endpoint error (mm) over every 4th voxel of the body (> −500 HU in the fixed scan)
@@ -133,7 +111,7 @@ fn main() {
         }
     }
     std::fs::create_dir_all(&out).unwrap();
-    let bin = binary();
+    let bin = release_binary();
     let dir = std::env::var("SINEW_REAL_CT").unwrap_or_else(|_| "/work/shared/data/real-ct".into());
     let native = sinew_io::read_image(&Path::new(&dir).join("chest_ct_a.nii.gz")).expect("the real CT");
     let cases: [(&str, [usize; 3], [f64; 3]); 3] = [

@@ -11,43 +11,10 @@
 //! figures measured when the defaults were last changed (2-core x86-64, recorded beside each
 //! test), so a regression of a quarter fails.
 
-use sinew_grid::{Border, Field, Image, LabelMap};
+use sinew_grid::{Image, LabelMap};
 use sinew_phantom::{generate, PhantomParams, LABELS};
 use sinew_solve::{register, RegParams, Similarity};
-
-/// Mean and 95th percentile of |u − u*| in mm over voxels where `inside` is non-zero.
-fn endpoint_error(u: &Field, truth: &Field, inside: &LabelMap) -> (f64, f64) {
-    let sp = u.grid.spacing();
-    let mut errs: Vec<f64> = Vec::new();
-    for (n, &l) in inside.as_slice().iter().enumerate() {
-        if l == 0 {
-            continue;
-        }
-        let e2: f64 = (0..3).map(|d| ((u.component(d)[n] - truth.component(d)[n]) as f64 * sp[d]).powi(2)).sum();
-        errs.push(e2.sqrt());
-    }
-    assert!(!errs.is_empty(), "the mask is empty");
-    let mean = errs.iter().sum::<f64>() / errs.len() as f64;
-    errs.sort_by(|a, b| a.partial_cmp(b).unwrap());
-    (mean, errs[((errs.len() as f64 * 0.95) as usize).min(errs.len() - 1)])
-}
-
-/// Adds Gaussian noise of `sigma` to `img`, drawn from a seeded generator (SplitMix64 and
-/// Box–Muller; the values are reproducible on every platform).
-fn add_noise(img: &mut Image, sigma: f32, seed: u64) {
-    let mut state = seed;
-    let mut next = move || {
-        state = state.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = state;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        ((z ^ (z >> 31)) >> 11) as f64 / (1u64 << 53) as f64
-    };
-    for v in img.data.iter_mut() {
-        let (a, b) = (next().max(1e-300), next());
-        *v += sigma * ((-2.0 * a.ln()).sqrt() * (std::f64::consts::TAU * b).cos()) as f32;
-    }
-}
+use sinew_testkit::{endpoint_error, KnownWarp};
 
 struct Outcome {
     mean: f64,
@@ -65,15 +32,11 @@ fn recover_case(
     remap: &dyn Fn(&mut Image),
     params: &RegParams,
 ) -> Outcome {
-    let truth = sinew_phantom::known_field(&clean.grid, max_mm);
-    let mut fixed = sinew_transform::warp_image(clean, &truth, Border::Nearest).unwrap();
-    let mut moving = clean.clone();
-    add_noise(&mut fixed, noise, 1);
-    add_noise(&mut moving, noise, 2);
-    remap(&mut moving);
-    let reg = register(&fixed, &moving, None, params, &mut |_| {}).unwrap();
-    let body = sinew_transform::warp_labels(inside, &truth).unwrap();
-    let (mean, p95) = endpoint_error(&reg.field, &truth, &body);
+    // Each scan gets its own noise after the warp (seeds 1 and 2; sinew_testkit::KnownWarp).
+    let mut case = KnownWarp::new(clean.clone(), max_mm, noise);
+    remap(&mut case.moving);
+    let reg = register(&case.fixed, &case.moving, None, params, &mut |_| {}).unwrap();
+    let (mean, p95) = endpoint_error(&reg.field, &case.truth, &case.on_fixed(inside));
     let det = sinew_transform::jacobian_determinant(&reg.field);
     let stats = sinew_transform::jacobian_stats(&det, None);
     eprintln!("max {max_mm} mm: EPE mean {mean:.3} mm p95 {p95:.3} mm, folding {:.6}", stats.folding_fraction);

@@ -3,36 +3,18 @@
 
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output, Stdio};
+
+use sinew_testkit::{ok, p, table_without_times, Sinew, QUICK};
 use std::time::{Duration, Instant};
 
-fn sinew(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).args(args).output().expect("run sinew")
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
-fn ok(out: Output) -> Output {
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    out
-}
-
-fn p(path: &Path) -> &str {
-    path.to_str().unwrap()
-}
-
-/// The registration settings every run shares: same preset, iterations and thread count, so
-/// that the same pair gives the same field in every run.
-const REG: [&str; 8] = ["--preset", "fast", "--iterations", "10,8,6,4", "--threads", "2", "--jobs", "1"];
-
+/// A cohort run one pair at a time with the shared quick settings (`QUICK`).
 fn cohort(demo: &Path, out: &Path, extra: &[&str]) -> Output {
-    let mut args = vec!["cohort", "--all-pairs", p(demo), "--out", p(out), "-q"];
-    args.extend(REG);
+    let mut args = vec!["cohort", "--all-pairs", p(demo), "--out", p(out), "-q", "--jobs", "1"];
+    args.extend(QUICK);
     args.extend(extra);
-    sinew(&args)
-}
-
-/// scores.csv without the runtime column (wall times differ between runs).
-fn table_without_runtime(path: &Path) -> Vec<String> {
-    let text = std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
-    text.lines().map(|l| l.rsplit_once(',').unwrap().0.to_string()).collect()
+    SINEW.run(&args)
 }
 
 /// summary.json without the runtime entries.
@@ -61,7 +43,7 @@ fn reports(out: &Path) -> usize {
 fn shards_cover_every_pair_exactly_once() {
     // Exact counting over the listing of a 6-subject folder (15 pairs), N = 1..=7. The files
     // are only listed here, never read.
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let dir = tmp.path().join("c");
     std::fs::create_dir(&dir).unwrap();
     for s in 0..6 {
@@ -72,7 +54,7 @@ fn shards_cover_every_pair_exactly_once() {
     let list = |extra: &[&str]| -> Vec<String> {
         let mut a = vec!["cohort", "--all-pairs", p(&dir), "--out", "unused", "--list"];
         a.extend(extra);
-        String::from_utf8(ok(sinew(&a)).stdout).unwrap().lines().map(String::from).collect()
+        String::from_utf8(ok(SINEW.run(&a)).stdout).unwrap().lines().map(String::from).collect()
     };
     let all = list(&[]);
     assert_eq!(all.len(), 15);
@@ -86,7 +68,7 @@ fn shards_cover_every_pair_exactly_once() {
         assert_eq!(seen, want, "N = {n}");
     }
     assert_eq!(
-        sinew(&["cohort", "--all-pairs", p(&dir), "--out", "x", "--shard", "0/3", "--list"]).status.code(),
+        SINEW.run(&["cohort", "--all-pairs", p(&dir), "--out", "x", "--shard", "0/3", "--list"]).status.code(),
         Some(2)
     );
 }
@@ -94,35 +76,24 @@ fn shards_cover_every_pair_exactly_once() {
 #[test]
 fn runs_resumes_after_a_kill_shards_merges_and_compares_methods() {
     let started = Instant::now();
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let t = tmp.path();
     let demo = t.join("demo");
-    ok(sinew(&["demo", "--small", "--subjects", "3", "--out", p(&demo), "-q"]));
+    SINEW.demo(&demo, 3, &[]);
 
     // 1. Uninterrupted run: 3 pairs, tables and per-pair outputs.
     let full = t.join("full");
     ok(cohort(&demo, &full, &[]));
-    let rows = table_without_runtime(&full.join("scores.csv"));
+    let rows = table_without_times(&full.join("scores.csv"));
     assert_eq!(rows.len(), 1 + 3 * 10, "header + 3 pairs × 10 labels");
-    assert!(rows[1].starts_with("sinew,0,subject_00,subject_01,1,liver,"), "{}", rows[1]);
+    assert_eq!(rows[1][..6], ["sinew", "0", "subject_00", "subject_01", "1", "liver"], "{:?}", rows[1]);
     let md = std::fs::read_to_string(full.join("summary.md")).unwrap();
     assert!(md.starts_with("> **Caution.** Research use only"), "{md}");
     let csv_before = std::fs::read(full.join("scores.csv")).unwrap();
 
     // 2. A rerun finds every pair complete and rewrites the same tables, byte for byte.
-    let out = ok(sinew(&[
-        "cohort",
-        "--all-pairs",
-        p(&demo),
-        "--out",
-        p(&full),
-        "--preset",
-        "fast",
-        "--iterations",
-        "10,8,6,4",
-        "--threads",
-        "2",
-    ]));
+    let out =
+        ok(SINEW.cmd().args(["cohort", "--all-pairs", p(&demo), "--out", p(&full)]).args(QUICK).output().unwrap());
     assert!(
         String::from_utf8_lossy(&out.stderr).contains("0 done, 3 already done"),
         "{}",
@@ -132,9 +103,10 @@ fn runs_resumes_after_a_kill_shards_merges_and_compares_methods() {
 
     // 3. Killed mid-run (SIGKILL once the first pair has its report), then resumed: the same tables.
     let killed = t.join("killed");
-    let mut child = Command::new(env!("CARGO_BIN_EXE_sinew"))
-        .args(["cohort", "--all-pairs", p(&demo), "--out", p(&killed), "-q"])
-        .args(REG)
+    let mut child = SINEW
+        .cmd()
+        .args(["cohort", "--all-pairs", p(&demo), "--out", p(&killed), "-q", "--jobs", "1"])
+        .args(QUICK)
         .stdout(Stdio::null())
         .stderr(Stdio::null())
         .spawn()
@@ -151,7 +123,7 @@ fn runs_resumes_after_a_kill_shards_merges_and_compares_methods() {
     assert!(score_files(&killed) < 3, "killed mid-run: not every pair was scored");
     assert!(!killed.join("scores.csv").exists(), "no table before the run ends");
     ok(cohort(&demo, &killed, &[]));
-    assert_eq!(table_without_runtime(&killed.join("scores.csv")), rows);
+    assert_eq!(table_without_times(&killed.join("scores.csv")), rows);
     assert_eq!(summary_without_runtime(&killed), summary_without_runtime(&full));
     let leftovers: Vec<PathBuf> = std::fs::read_dir(killed.join("pairs"))
         .unwrap()
@@ -166,9 +138,9 @@ fn runs_resumes_after_a_kill_shards_merges_and_compares_methods() {
     ok(cohort(&demo, &s1, &["--shard", "1/2"]));
     ok(cohort(&demo, &s2, &["--shard", "2/2"]));
     assert!(s1.join("scores.shard-1-of-2.csv").is_file() && !s1.join("scores.csv").exists());
-    assert_eq!(table_without_runtime(&s1.join("scores.shard-1-of-2.csv")).len(), 1 + 2 * 10); // pairs 0, 2
-    ok(sinew(&["cohort", "merge", p(&s1), p(&s2), "--out", p(&merged)]));
-    assert_eq!(table_without_runtime(&merged.join("scores.csv")), rows);
+    assert_eq!(table_without_times(&s1.join("scores.shard-1-of-2.csv")).len(), 1 + 2 * 10); // pairs 0, 2
+    ok(SINEW.run(&["cohort", "merge", p(&s1), p(&s2), "--out", p(&merged)]));
+    assert_eq!(table_without_times(&merged.join("scores.csv")), rows);
     assert_eq!(summary_without_runtime(&merged), summary_without_runtime(&full));
 
     // 5. Another method's fields for the same pairs (here: sinew's own fields, two as NIfTI in
@@ -185,22 +157,19 @@ fn runs_resumes_after_a_kill_shards_merges_and_compares_methods() {
         }
     }
     ok(cohort(&demo, &full, &["--method", "other", "--fields", p(&fields)]));
-    let text = std::fs::read_to_string(full.join("scores.csv")).unwrap();
+    let table = table_without_times(&full.join("scores.csv"));
     let (mut base, mut other) = (Vec::new(), Vec::new());
-    for line in text.lines().skip(1) {
-        let (method, rest) = line.split_once(',').unwrap();
-        let rest = rest.rsplit_once(',').unwrap().0.to_string(); // without runtime
-        match method {
-            "sinew" => base.push(rest),
-            "other" => other.push(rest),
+    for row in &table[1..] {
+        match row[0].as_str() {
+            "sinew" => base.push(&row[1..]),
+            "other" => other.push(&row[1..]),
             m => panic!("unexpected method {m}"),
         }
     }
-    assert_eq!(base.len(), 30);
+    // 3 pairs × 10 labels for each method, counted before the rows are paired off.
+    assert_eq!((base.len(), other.len()), (30, 30));
     // The .npy holds the same voxel displacements the baseline reads from the NIfTI file.
     for (b, o) in base.iter().zip(&other) {
-        let cells = |s: &str| s.split(',').map(String::from).collect::<Vec<_>>();
-        let (b, o) = (cells(b), cells(o));
         assert_eq!(b, o, "identical fields give identical rows");
     }
     let md = std::fs::read_to_string(full.join("summary.md")).unwrap();

@@ -2,33 +2,10 @@
 //! the README shows (`scripts/slurm_check.sh` runs those on a real Slurm cluster in CI).
 
 use std::path::Path;
-use std::process::{Command, Output};
 
-fn sinew(args: &[&str]) -> Output {
-    let out = Command::new(env!("CARGO_BIN_EXE_sinew")).args(args).output().expect("run sinew");
-    assert!(out.status.success(), "sinew {args:?}: {}", String::from_utf8_lossy(&out.stderr));
-    out
-}
+use sinew_testkit::{p, table_without_times, Sinew, QUICK};
 
-fn p(path: &Path) -> &str {
-    path.to_str().unwrap()
-}
-
-/// scores.csv as rows of cells, without the `runtime_s` column (wall times differ between
-/// runs). The demo's label names hold no commas or quotes, so splitting on ',' is exact.
-fn table_without_runtime(path: &Path) -> Vec<Vec<String>> {
-    let text = std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
-    let mut lines = text.lines().map(|l| l.split(',').map(String::from).collect::<Vec<_>>());
-    let header = lines.next().expect("a header line");
-    let drop = header.iter().position(|c| c == "runtime_s").expect("a runtime_s column");
-    std::iter::once(header)
-        .chain(lines)
-        .map(|mut r| {
-            r.remove(drop);
-            r
-        })
-        .collect()
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 /// The worker threads each pair's registration used, from its report.json, by pair folder.
 fn threads_per_pair(out: &Path) -> Vec<(String, u64)> {
@@ -50,27 +27,12 @@ fn two_jobs_give_the_table_of_one() {
     // The reference is the same cohort run one pair at a time: each pair's result must not
     // depend on how many pairs run beside it or on its thread count (sums are taken per slab
     // in slab order), so the tables are equal value for value.
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let t = tmp.path();
     let demo = t.join("demo");
-    sinew(&["demo", "--small", "--subjects", "3", "--data-only", "--out", p(&demo), "-q"]);
+    SINEW.demo(&demo, 3, &["--data-only"]);
     let run = |out: &Path, jobs: &str| {
-        sinew(&[
-            "cohort",
-            "--all-pairs",
-            p(&demo),
-            "--out",
-            p(out),
-            "--preset",
-            "fast",
-            "--iterations",
-            "10,8,6,4",
-            "--threads",
-            "2",
-            "--jobs",
-            jobs,
-            "-q",
-        ]);
+        SINEW.ok(["cohort", "--all-pairs", p(&demo), "--out", p(out), "--jobs", jobs, "-q"].iter().chain(&QUICK));
     };
     let (one, two) = (t.join("one"), t.join("two"));
     run(&one, "1");
@@ -82,9 +44,11 @@ fn two_jobs_give_the_table_of_one() {
     assert_eq!(threads_per_pair(&one), with(2));
     assert_eq!(threads_per_pair(&two), with(1));
 
-    let want = table_without_runtime(&one.join("scores.csv"));
+    let header = std::fs::read_to_string(one.join("scores.csv")).unwrap().lines().next().unwrap_or("").to_string();
+    assert!(header.split(',').any(|c| c == "runtime_s"), "no runtime_s column: {header}");
+    let want = table_without_times(&one.join("scores.csv"));
     assert_eq!(want.len(), 1 + 3 * 10, "header + 3 pairs × 10 labels");
-    assert_eq!(table_without_runtime(&two.join("scores.csv")), want);
+    assert_eq!(table_without_times(&two.join("scores.csv")), want);
 }
 
 #[test]

@@ -9,9 +9,12 @@ use std::process::{Command, Output};
 
 use serde_json::Value;
 use sinew_grid::{Grid, LabelMap};
+use sinew_testkit::Sinew;
+
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 fn score(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).arg("score").args(args).output().expect("run sinew")
+    SINEW.cmd().arg("score").args(args).output().expect("run sinew")
 }
 
 fn boxed(grid: &Grid, lo: [usize; 3], hi: [usize; 3]) -> LabelMap {
@@ -26,7 +29,7 @@ fn boxed(grid: &Grid, lo: [usize; 3], hi: [usize; 3]) -> LabelMap {
 
 #[test]
 fn training_code_fields_give_back_the_known_shift() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let d = tmp.path();
     let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../docs/snippets/training_fields.py");
     let py = Command::new("python3").arg(&script).arg(d).output().expect("python3 with numpy is required");

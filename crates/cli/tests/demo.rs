@@ -5,18 +5,17 @@ use std::path::Path;
 use std::process::{Command, Output};
 
 use sinew_phantom::{generate, PhantomParams, LABELS};
+use sinew_testkit::{text, Sinew};
+
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 fn sinew(args: &[&str], out: &Path) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).arg("demo").args(args).arg("--out").arg(out).output().expect("run sinew")
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
+    SINEW.cmd().arg("demo").args(args).arg("--out").arg(out).output().expect("run sinew")
 }
 
 #[test]
 fn writes_a_small_cohort_and_resumes() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let dir = tmp.path().join("cohort");
     let out = sinew(&["--small", "--subjects", "2"], &dir);
     assert!(out.status.success(), "{}", text(&out.stderr));
@@ -89,7 +88,7 @@ print("ok")
 
 #[test]
 fn rejects_a_zero_subject_count() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let out = sinew(&["--subjects", "0"], &tmp.path().join("x"));
     assert!(!out.status.success());
     assert!(!tmp.path().join("x").exists());
@@ -97,7 +96,7 @@ fn rejects_a_zero_subject_count() {
 
 #[test]
 fn variation_and_noise_flags_reach_the_generator() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let dir = tmp.path().join("hard");
     let out = sinew(
         &["--data-only", "--small", "--subjects", "1", "--seed", "11", "--variation", "2", "--noise-hu", "20"],

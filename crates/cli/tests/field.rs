@@ -6,10 +6,9 @@ use std::process::Command;
 
 use sinew_grid::{Affine, Field, Grid};
 use sinew_io::FieldUnits;
+use sinew_testkit::Sinew;
 
-fn sinew() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_sinew"))
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 fn field(grid: &Grid) -> Field {
     let mut f = Field::zeros(grid.clone());
@@ -20,13 +19,14 @@ fn field(grid: &Grid) -> Field {
 #[test]
 fn absolute_mm_map_agrees_with_nibabel_apply_affine() {
     // Reference: nibabel.affines.apply_affine on x + u(x), oblique grid.
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let a = Affine::from_parts([[0.0, -2.0, 0.3], [1.5, 0.0, 0.0], [0.1, 0.0, 2.5]], [10.0, -20.0, 5.0]);
     let g = Grid::new([9, 8, 7], a).unwrap();
     let src = dir.path().join("u.nii.gz");
     sinew_io::write_field(&src, &field(&g), FieldUnits::Mm).unwrap();
     let out = dir.path().join("abs.npy");
-    let st = sinew()
+    let st = SINEW
+        .cmd()
         .args(["field", "convert"])
         .arg(&src)
         .arg("-o")
@@ -43,7 +43,7 @@ fn absolute_mm_map_agrees_with_nibabel_apply_affine() {
 
 #[test]
 fn invert_then_compose_gives_the_identity_and_units_round_trip() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let g = Grid::axis_aligned([16, 14, 12], [2.0, 2.0, 2.0], [0.0; 3]);
     let mut u = Field::zeros(g.clone());
     for ((d, i, j, k), v) in u.data.indexed_iter_mut() {
@@ -54,12 +54,22 @@ fn invert_then_compose_gives_the_identity_and_units_round_trip() {
     let inv = dir.path().join("v.nii.gz");
     let comp = dir.path().join("c.nii");
     let vox = dir.path().join("u_vox.nii.gz");
-    assert!(sinew().args(["field", "invert"]).arg(&src).arg("-o").arg(&inv).status().unwrap().success());
-    assert!(sinew().args(["field", "compose"]).arg(&inv).arg(&src).arg("-o").arg(&comp).status().unwrap().success());
+    assert!(SINEW.cmd().args(["field", "invert"]).arg(&src).arg("-o").arg(&inv).status().unwrap().success());
+    assert!(SINEW
+        .cmd()
+        .args(["field", "compose"])
+        .arg(&inv)
+        .arg(&src)
+        .arg("-o")
+        .arg(&comp)
+        .status()
+        .unwrap()
+        .success());
     let (c, _) = sinew_io::read_field(&comp, Default::default()).unwrap();
     let mean = c.data.iter().map(|v| v.abs() as f64).sum::<f64>() / c.data.len() as f64;
     assert!(mean < 0.05, "mean |v then u| {mean} voxels");
-    assert!(sinew()
+    assert!(SINEW
+        .cmd()
         .args(["field", "convert"])
         .arg(&src)
         .arg("-o")
@@ -72,5 +82,5 @@ fn invert_then_compose_gives_the_identity_and_units_round_trip() {
     assert_eq!(units, FieldUnits::Voxel);
     assert!(back.data.iter().zip(u.data.iter()).all(|(a, b)| (a - b).abs() < 1e-5));
     // Refuses to overwrite its input.
-    assert!(!sinew().args(["field", "invert"]).arg(&src).arg("-o").arg(&src).status().unwrap().success());
+    assert!(!SINEW.cmd().args(["field", "invert"]).arg(&src).arg("-o").arg(&src).status().unwrap().success());
 }

@@ -4,16 +4,19 @@
 //! label counts (from `get_fdata()`).
 
 use std::path::PathBuf;
-use std::process::{Command, Output};
+use std::process::Output;
 
 use serde_json::Value;
+use sinew_testkit::Sinew;
+
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 fn fixture(name: &str) -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../../tests/fixtures").join(name)
 }
 
 fn sinew(args: &[&std::ffi::OsStr]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).arg("info").args(args).output().expect("run sinew")
+    SINEW.cmd().arg("info").args(args).output().expect("run sinew")
 }
 
 fn nibabel() -> Value {
@@ -96,7 +99,7 @@ fn json_matches_nibabel() {
 #[test]
 fn counts_non_finite_and_reports_field_units() {
     use sinew_grid::{Field, Grid, Volume};
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let grid = Grid::axis_aligned([4, 3, 2], [2.0, 2.0, 2.0], [0.0; 3]);
     let mut img = Volume::filled(grid.clone(), 5.0f32);
     img.data[[0, 0, 0]] = f32::NAN;
@@ -136,7 +139,7 @@ fn human_output_is_aligned_text() {
 
 #[test]
 fn bad_files_exit_2_with_one_line_naming_the_file() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let bad = dir.path().join("broken.nii");
     std::fs::write(&bad, vec![7u8; 400]).unwrap();
     let missing = dir.path().join("missing.nii.gz");

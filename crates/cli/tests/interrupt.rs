@@ -9,46 +9,18 @@ use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
-fn sinew() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_sinew"))
-}
+use sinew_testkit::{listing, run_ok, table_without_times, Sinew, SplitMix64};
 
-#[track_caller]
-fn run_ok(cmd: &mut Command) {
-    let out = cmd.output().unwrap();
-    assert!(out.status.success(), "{cmd:?} failed: {}", String::from_utf8_lossy(&out.stderr));
-}
-
-/// SplitMix64, for reproducible kill times.
-struct Rng(u64);
-
-impl Rng {
-    fn next_f64(&mut self) -> f64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        ((z ^ (z >> 31)) >> 11) as f64 / (1u64 << 53) as f64
-    }
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 /// Every file under `dir`, relative path → full path.
 fn files(dir: &Path) -> BTreeMap<PathBuf, PathBuf> {
-    let mut out = BTreeMap::new();
-    let mut stack = vec![dir.to_path_buf()];
-    while let Some(d) = stack.pop() {
-        // A running command may remove a folder (staging) between listing and reading it.
-        let Ok(entries) = std::fs::read_dir(&d) else { continue };
-        for e in entries.flatten() {
-            let p = e.path();
-            if p.is_dir() {
-                stack.push(p.clone());
-            } else {
-                out.insert(p.strip_prefix(dir).unwrap().to_path_buf(), p);
-            }
-        }
-    }
-    out
+    listing(dir)
+        .into_iter()
+        .map(|rel| (dir.join(&rel), rel))
+        .filter(|(p, _)| !p.is_dir())
+        .map(|(p, rel)| (rel, p))
+        .collect()
 }
 
 fn hidden(rel: &Path) -> bool {
@@ -87,7 +59,7 @@ fn assert_no_half_written(dir: &Path) {
 /// whatever the machine's load. Checks the folder after each kill, then lets the command
 /// finish. Returns how many runs were killed before completing.
 fn kill_repeatedly(mut make: impl FnMut() -> Command, out: &Path, total: usize, seed: u64, kills: usize) -> usize {
-    let mut rng = Rng(seed);
+    let mut rng = SplitMix64(seed);
     let mut killed = 0;
     for _ in 0..kills {
         let target = (rng.next_f64() * total as f64) as usize;
@@ -131,18 +103,6 @@ fn normalised_json(p: &Path, from: &Path) -> serde_json::Value {
     v
 }
 
-/// A CSV table without the columns whose header ends in `_s` (wall times).
-fn csv_without_times(p: &Path) -> Vec<Vec<String>> {
-    let text = std::fs::read_to_string(p).unwrap();
-    let mut lines = text.lines();
-    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
-    let keep: Vec<bool> = header.iter().map(|h| !h.ends_with("_s")).collect();
-    std::iter::once(header.join(","))
-        .chain(lines.map(str::to_string))
-        .map(|l| l.split(',').zip(&keep).filter(|(_, k)| **k).map(|(c, _)| c.to_string()).collect())
-        .collect()
-}
-
 /// Asserts that the interrupted folder `b` holds exactly the files of the reference `a`, with
 /// equal contents (JSON/CSV without wall times, Markdown summaries without the runtime table),
 /// and no leftovers.
@@ -157,7 +117,7 @@ fn assert_same_outputs(a: &Path, b: &Path) {
         if name.ends_with(".json") {
             assert_eq!(normalised_json(pa, a), normalised_json(pb, b), "{name} differs");
         } else if name.ends_with(".csv") {
-            assert_eq!(csv_without_times(pa), csv_without_times(pb), "{name} differs");
+            assert_eq!(table_without_times(pa), table_without_times(pb), "{name} differs");
         } else if name.ends_with(".md") || name.ends_with(".html") {
             // Only the runtime figures may differ.
             let strip = |p: &Path| -> Vec<String> {
@@ -177,17 +137,13 @@ fn assert_same_outputs(a: &Path, b: &Path) {
     }
 }
 
-fn demo(dir: &Path, subjects: u32) {
-    run_ok(sinew().args(["demo", "--small", "-q", "--subjects", &subjects.to_string(), "--out"]).arg(dir));
-}
-
 #[test]
 fn prep_killed_repeatedly_ends_like_an_uninterrupted_run() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let data = tmp.path().join("demo");
-    demo(&data, 3);
+    SINEW.demo(&data, 3, &[]);
     let prep = |out: &Path| {
-        let mut c = sinew();
+        let mut c = SINEW.cmd();
         c.args(["prep", "-q", "--spacing", "3,3,3", "--window=-200,300", "--scale", "unit", "--mask-out", "-j", "2"])
             .arg(&data)
             .arg("-o")
@@ -203,11 +159,11 @@ fn prep_killed_repeatedly_ends_like_an_uninterrupted_run() {
 
 #[test]
 fn cohort_killed_repeatedly_ends_like_an_uninterrupted_run() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let data = tmp.path().join("demo");
-    demo(&data, 3);
+    SINEW.demo(&data, 3, &[]);
     let cohort = |out: &Path| {
-        let mut c = sinew();
+        let mut c = SINEW.cmd();
         c.args(["cohort", "-q", "--preset", "fast", "--iterations", "5,5,5,5", "-j", "2", "--all-pairs"])
             .arg(&data)
             .arg("-o")
@@ -230,14 +186,14 @@ fn dead_pid() -> u32 {
 fn leftovers_of_a_killed_run_are_removed_by_the_rerun() {
     // Deterministic companion of the random kills: plant what a SIGKILL during each kind of
     // write leaves behind, rerun, and expect none of it.
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let data = tmp.path().join("demo");
-    demo(&data, 2);
+    SINEW.demo(&data, 2, &[]);
     let pid = dead_pid();
 
     let out = tmp.path().join("cohort");
     let cohort = || {
-        let mut c = sinew();
+        let mut c = SINEW.cmd();
         c.args(["cohort", "-q", "--preset", "fast", "--iterations", "3,3,3,3", "--all-pairs"])
             .arg(&data)
             .arg("-o")
@@ -260,7 +216,7 @@ fn leftovers_of_a_killed_run_are_removed_by_the_rerun() {
 
     let prepped = tmp.path().join("prepped");
     let prep = || {
-        let mut c = sinew();
+        let mut c = SINEW.cmd();
         c.args(["prep", "-q", "--spacing", "6,6,6"]).arg(&data).arg("-o").arg(&prepped);
         c
     };

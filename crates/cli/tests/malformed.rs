@@ -7,18 +7,16 @@
 //! 2004): dim 40, datatype 70, bitpix 72, pixdim 76, vox_offset 108, scl_slope 112,
 //! qform_code 252, sform_code 254, quatern_b 256, srow_x 280, magic 344; voxel data at 352.
 
-use std::collections::BTreeSet;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use sinew_grid::{Field, Grid, Volume};
+use sinew_testkit::{listing, Sinew};
 
 const SHAPE: [usize; 3] = [20, 16, 24];
 const VOX: usize = 352;
 
-fn sinew() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_sinew"))
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 /// A folder of valid inputs (a smooth blob image pair with labels, a field) to corrupt.
 struct Kit {
@@ -27,7 +25,7 @@ struct Kit {
 
 impl Kit {
     fn new() -> Kit {
-        let dir = tempfile::tempdir().unwrap();
+        let dir = sinew_testkit::tempdir();
         let grid = Grid::axis_aligned(SHAPE, [4.0, 4.0, 4.0], [-40.0, -30.0, -46.0]);
         for (name, shift) in [("fixed.nii", 0.0), ("moving.nii", 1.5)] {
             let img = Volume::new(
@@ -102,30 +100,13 @@ impl Kit {
     }
 }
 
-/// Every path under `dir` (recursively, hidden files included), relative to it.
-fn listing(dir: &Path) -> BTreeSet<PathBuf> {
-    let mut out = BTreeSet::new();
-    let mut stack = vec![dir.to_path_buf()];
-    while let Some(d) = stack.pop() {
-        let Ok(rd) = std::fs::read_dir(&d) else { continue };
-        for e in rd {
-            let p = e.unwrap().path();
-            if p.is_dir() {
-                stack.push(p.clone());
-            }
-            out.insert(p.strip_prefix(dir).unwrap().to_path_buf());
-        }
-    }
-    out
-}
-
 /// Runs `sinew args…` and asserts: exit code 2; stderr is one line that names `culprit` (its
 /// file name) and contains every one of `needles` (case-insensitive); nothing new appeared in
 /// `watch` (the output folder, or the folder of the output file).
 #[track_caller]
 fn fails(args: &[&dyn AsRefOsStr], watch: &Path, culprit: &Path, needles: &[&str]) {
     let before = listing(watch);
-    let out = sinew().args(args.iter().map(|a| a.as_os())).output().unwrap();
+    let out = SINEW.cmd().args(args.iter().map(|a| a.as_os())).output().unwrap();
     let stderr = String::from_utf8_lossy(&out.stderr);
     let shown: Vec<String> = args.iter().map(|a| a.as_os().to_string_lossy().into_owned()).collect();
     assert_eq!(out.status.code(), Some(2), "sinew {shown:?}: exit {:?}, stderr {stderr}", out.status);
@@ -460,10 +441,11 @@ fn output_would_overwrite_an_input() {
     assert_eq!(std::fs::read(&fixed).unwrap(), k.bytes("fixed.nii"), "the input was changed");
 }
 
-/// A tiny tmpfs of `size_k` KiB to fill; `None` (with a note) where mounting is not permitted.
+/// A tiny tmpfs of `size_k` KiB to fill, unmounted when dropped.
 struct Tmpfs(PathBuf);
 
 impl Tmpfs {
+    /// Mounts it at `at`; `None` where this process may not mount.
     fn mount(at: &Path, size_k: u64) -> Option<Tmpfs> {
         std::fs::create_dir_all(at).unwrap();
         let ok = Command::new("mount")
@@ -471,11 +453,7 @@ impl Tmpfs {
             .arg(at)
             .output()
             .is_ok_and(|o| o.status.success());
-        if !ok {
-            eprintln!("note: cannot mount a tmpfs here (not root or not permitted); full-disk case skipped");
-            return None;
-        }
-        Some(Tmpfs(at.to_path_buf()))
+        ok.then(|| Tmpfs(at.to_path_buf()))
     }
 }
 
@@ -485,11 +463,36 @@ impl Drop for Tmpfs {
     }
 }
 
+/// Set in the copy of this test that runs inside its own user and mount namespace.
+const IN_NAMESPACE: &str = "SINEW_FULL_DISK_IN_NAMESPACE";
+
 #[test]
 fn full_disk() {
     let k = Kit::new();
+    // Mounting needs root (CAP_SYS_ADMIN). Without it the test runs itself again inside a new
+    // user and mount namespace (`unshare --user --map-root-user --mount`, Linux), where a
+    // tmpfs may be mounted; where neither works it fails, saying why: it never passes
+    // without having filled a disk.
+    if std::env::var_os(IN_NAMESPACE).is_none() && Tmpfs::mount(&k.path("probe"), 64).is_none() {
+        let out = Command::new("unshare")
+            .args(["--user", "--map-root-user", "--mount"])
+            .arg(std::env::current_exe().unwrap())
+            .args(["full_disk", "--exact", "--test-threads=1"])
+            .env(IN_NAMESPACE, "1")
+            .output()
+            .unwrap_or_else(|e| {
+                panic!("no permission to mount a tmpfs and no `unshare` ({e}); skip explicitly: -- --skip full_disk")
+            });
+        let stdout = String::from_utf8_lossy(&out.stdout);
+        assert!(
+            out.status.success() && stdout.contains(" 1 passed"),
+            "full_disk inside `unshare --user --map-root-user --mount` (no permission to mount here): {stdout}{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        return;
+    }
     let register = |out: &Path| {
-        let mut c = sinew();
+        let mut c = SINEW.cmd();
         c.args(["register", "-q", "--levels=2", "--iterations=2,2", "-f"])
             .arg(k.path("fixed.nii"))
             .arg("-m")
@@ -508,7 +511,7 @@ fn full_disk() {
     // 64 KiB: the first write fails; field + 8 KiB: the field is written, the next one fails
     // (and the field must then be removed, not left as a partial set).
     for size_k in [64, field_k + 8] {
-        let Some(fs) = Tmpfs::mount(&k.path(&format!("tiny{size_k}")), size_k) else { return };
+        let fs = Tmpfs::mount(&k.path(&format!("tiny{size_k}")), size_k).expect("mount a tmpfs");
         let out = fs.0.join("out");
         let r = register(&out).output().unwrap();
         let stderr = String::from_utf8_lossy(&r.stderr);

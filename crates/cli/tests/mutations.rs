@@ -16,52 +16,15 @@
 //! `SINEW_MUTATIONS=<n>` sets the number of mutated inputs per reader (default 300, a few
 //! seconds).
 
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::path::Path;
+use std::process::Output;
 
-fn sinew(args: &[&std::ffi::OsStr]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).args(args).output().expect("run sinew")
-}
+use sinew_testkit::{listing, Sinew, SplitMix64};
 
-/// SplitMix64 (a fixed, documented generator, so the sequence is the same everywhere).
-struct Rng(u64);
-
-impl Rng {
-    fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-    fn below(&mut self, n: usize) -> usize {
-        (self.next() % n.max(1) as u64) as usize
-    }
-    fn pick<'a>(&mut self, v: &[&'a str]) -> &'a str {
-        v[self.below(v.len())]
-    }
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 fn mutations() -> usize {
     std::env::var("SINEW_MUTATIONS").ok().and_then(|v| v.parse().ok()).unwrap_or(300)
-}
-
-/// Every path under `dir`, relative to it.
-fn listing(dir: &Path) -> Vec<PathBuf> {
-    let mut out = Vec::new();
-    let mut stack = vec![dir.to_path_buf()];
-    while let Some(d) = stack.pop() {
-        let Ok(rd) = std::fs::read_dir(&d) else { continue };
-        for e in rd {
-            let p = e.unwrap().path();
-            if p.is_dir() {
-                stack.push(p.clone());
-            }
-            out.push(p.strip_prefix(dir).unwrap().to_path_buf());
-        }
-    }
-    out.sort();
-    out
 }
 
 /// Exit code 2 and one stderr line naming `culprit` (or one of `or_names`); returns the line.
@@ -147,7 +110,7 @@ const TOML_VALUES: [&str; 22] = [
     "\"\"\"",
 ];
 
-fn mutate_config(rng: &mut Rng, seed: &str) -> String {
+fn mutate_config(rng: &mut SplitMix64, seed: &str) -> String {
     let mut lines: Vec<String> = seed.lines().map(str::to_string).collect();
     for _ in 0..1 + rng.below(3) {
         let n = lines.len();
@@ -198,7 +161,7 @@ fn mutate_config(rng: &mut Rng, seed: &str) -> String {
 
 /// Command-line flags that clap accepts (numbers of the right type), so that every failure
 /// comes from the parameter check, not from argument parsing.
-fn level_flags(rng: &mut Rng) -> Vec<String> {
+fn level_flags(rng: &mut SplitMix64) -> Vec<String> {
     let mut f = Vec::new();
     if rng.below(2) == 0 {
         f.push(format!("--levels={}", rng.below(10)));
@@ -218,7 +181,7 @@ fn level_flags(rng: &mut Rng) -> Vec<String> {
 
 #[test]
 fn seeded_config_mutations() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let example =
         std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("../../examples/bspline.toml")).unwrap();
     let seeds = [FULL_CONFIG.to_string(), example, "lambda = 0.3\n".to_string(), String::new()];
@@ -227,43 +190,32 @@ fn seeded_config_mutations() {
         (dir.path().join("absent_fixed.nii"), dir.path().join("absent_moving.nii"), dir.path().join("out"));
     let cfg = dir.path().join("params.toml");
     // The seeds themselves are valid: the run fails on the missing fixed scan.
+    let register: [&std::ffi::OsStr; 9] = [
+        "register".as_ref(),
+        "-f".as_ref(),
+        fixed.as_os_str(),
+        "-m".as_ref(),
+        moving.as_os_str(),
+        "-o".as_ref(),
+        out.as_os_str(),
+        "--config".as_ref(),
+        cfg.as_os_str(),
+    ];
     for s in &seeds {
         std::fs::write(&cfg, s).unwrap();
-        let o = sinew(&[
-            "register".as_ref(),
-            "-f".as_ref(),
-            fixed.as_os_str(),
-            "-m".as_ref(),
-            moving.as_os_str(),
-            "-o".as_ref(),
-            out.as_os_str(),
-            "--config".as_ref(),
-            cfg.as_os_str(),
-        ]);
-        one_line_error(&o, s, &["absent_fixed.nii"]);
+        one_line_error(&SINEW.run(register), s, &["absent_fixed.nii"]);
     }
     let before = listing(dir.path());
-    let mut rng = Rng(0xC0F1_6000_5EED);
+    let mut rng = SplitMix64(0xC0F1_6000_5EED);
     let (n, mut accepted) = (mutations(), 0);
     for _ in 0..n {
         let seed = &seeds[rng.below(seeds.len())];
         let text = mutate_config(&mut rng, seed);
         std::fs::write(&cfg, &text).unwrap();
         let flags = level_flags(&mut rng);
-        let mut args: Vec<&std::ffi::OsStr> = vec![
-            "register".as_ref(),
-            "-f".as_ref(),
-            fixed.as_os_str(),
-            "-m".as_ref(),
-            moving.as_os_str(),
-            "-o".as_ref(),
-            out.as_os_str(),
-            "--config".as_ref(),
-            cfg.as_os_str(),
-        ];
-        args.extend(flags.iter().map(std::ffi::OsStr::new));
+        let args = register.into_iter().chain(flags.iter().map(std::ffi::OsStr::new));
         let shown = format!("{text}\n(flags {flags:?})");
-        let line = one_line_error(&sinew(&args), &shown, &["params.toml", "absent_fixed.nii"]);
+        let line = one_line_error(&SINEW.run(args), &shown, &["params.toml", "absent_fixed.nii"]);
         if line.contains("absent_fixed.nii") {
             accepted += 1;
         }
@@ -314,7 +266,7 @@ const CELL_VALUES: [&str; 20] = [
     "\"line\nbreak\"",
 ];
 
-fn mutate_table(rng: &mut Rng, seed: &str) -> String {
+fn mutate_table(rng: &mut SplitMix64, seed: &str) -> String {
     let mut rows: Vec<Vec<String>> = seed.lines().map(|l| l.split(',').map(str::to_string).collect()).collect();
     for _ in 0..1 + rng.below(3) {
         let n = rows.len();
@@ -366,13 +318,13 @@ fn mutate_table(rng: &mut Rng, seed: &str) -> String {
 
 #[test]
 fn seeded_table_mutations() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let table = dir.path().join("scores_in.csv");
     let (out, again) = (dir.path().join("merged"), dir.path().join("again"));
     let merge = |input: &Path, into: &Path| {
-        sinew(&["cohort".as_ref(), "merge".as_ref(), input.as_os_str(), "--out".as_ref(), into.as_os_str()])
+        SINEW.cmd().args(["cohort", "merge"]).arg(input).arg("--out").arg(into).output().unwrap()
     };
-    let mut rng = Rng(0x7AB1_E000_5EED);
+    let mut rng = SplitMix64(0x7AB1_E000_5EED);
     let (n, mut accepted) = (mutations(), 0);
     for t in 0..=n {
         // The seed itself first: it must be accepted.

@@ -1,40 +1,37 @@
 //! Pair lists (`--pairs`, a manifest's `[[pair]]` tables) and an imported method's runtimes.
 
-use std::path::Path;
-use std::process::{Command, Output};
-
 use sinew_grid::Field;
+use sinew_testkit::{ok, p, Sinew};
 
-fn sinew(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).args(args).output().expect("run sinew")
-}
-
-fn ok(out: Output) -> Output {
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    out
-}
-
-fn p(path: &Path) -> &str {
-    path.to_str().unwrap()
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 #[test]
 fn a_pair_list_in_both_directions_scores_an_imported_method_with_its_runtimes() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let t = tmp.path();
     let demo = t.join("demo");
-    ok(sinew(&["demo", "--out", p(&demo), "--small", "--subjects", "3", "--data-only", "-q"]));
+    SINEW.demo(&demo, 3, &["--data-only"]);
     let list = t.join("test_pairs.csv");
     std::fs::write(&list, "fixed,moving\nsubject_02,subject_00\nsubject_00,subject_02\nsubject_01,subject_00\n")
         .unwrap();
     // --list: the list's order is the pair index; both directions are separate pairs.
-    let listed = ok(sinew(&["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list"]));
+    let listed = ok(SINEW.run(&["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list"]));
     assert_eq!(
         String::from_utf8(listed.stdout).unwrap(),
         "0\tsubject_02\tsubject_00\n1\tsubject_00\tsubject_02\n2\tsubject_01\tsubject_00\n"
     );
-    let shard =
-        ok(sinew(&["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list", "--shard", "2/2"]));
+    let shard = ok(SINEW.run(&[
+        "cohort",
+        "--all-pairs",
+        p(&demo),
+        "--pairs",
+        p(&list),
+        "--out",
+        "x",
+        "--list",
+        "--shard",
+        "2/2",
+    ]));
     assert_eq!(String::from_utf8(shard.stdout).unwrap(), "1\tsubject_00\tsubject_02\n");
 
     // Zero fields (the identity map) of an imported method: warped = moving labels resampled,
@@ -48,22 +45,13 @@ fn a_pair_list_in_both_directions_scores_an_imported_method_with_its_runtimes() 
     let times = t.join("times.csv");
     std::fs::write(&times, "fixed,moving,runtime_s\nsubject_02,subject_00,0.25\nsubject_00,subject_02,0.5\n").unwrap();
     let out = t.join("runs");
-    ok(sinew(&[
-        "cohort",
-        "--all-pairs",
-        p(&demo),
-        "--pairs",
-        p(&list),
-        "--out",
-        p(&out),
-        "--method",
-        "net",
-        "--fields",
-        p(&fields),
-        "--runtimes",
-        p(&times),
-        "-q",
-    ]));
+    // The imported method's run over the list, with its fields and runtimes.
+    let import = || {
+        let mut args = vec!["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", p(&out)];
+        args.extend(["--method", "net", "--fields", p(&fields), "--runtimes", p(&times), "-q"]);
+        SINEW.run(&args)
+    };
+    ok(import());
     let mut rdr = csv::Reader::from_path(out.join("scores.csv")).unwrap();
     let header = rdr.headers().unwrap().clone();
     let col = |name: &str| header.iter().position(|h| h == name).unwrap();
@@ -89,29 +77,14 @@ fn a_pair_list_in_both_directions_scores_an_imported_method_with_its_runtimes() 
     // Bad lists: one line naming the file and the problem, exit code 2.
     for (text, says) in [("fixed,moving\nsubject_00,nobody\n", "nobody"), ("a,b\nx,y\n", "header")] {
         std::fs::write(&list, text).unwrap();
-        let r = sinew(&["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list"]);
+        let r = SINEW.run(&["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list"]);
         let err = String::from_utf8_lossy(&r.stderr);
         assert_eq!(r.status.code(), Some(2));
         assert!(err.contains("test_pairs.csv") && err.contains(says) && err.lines().count() == 1, "{err}");
     }
     std::fs::write(&times, "fixed,moving,runtime_s\nsubject_02,subject_00,fast\n").unwrap();
     std::fs::write(&list, "fixed,moving\nsubject_02,subject_00\n").unwrap();
-    let r = sinew(&[
-        "cohort",
-        "--all-pairs",
-        p(&demo),
-        "--pairs",
-        p(&list),
-        "--out",
-        p(&out),
-        "--method",
-        "net",
-        "--fields",
-        p(&fields),
-        "--runtimes",
-        p(&times),
-        "-q",
-    ]);
+    let r = import();
     assert_eq!(r.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&r.stderr).contains("times.csv:2"), "{}", String::from_utf8_lossy(&r.stderr));
 }

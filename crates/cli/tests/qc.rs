@@ -3,17 +3,11 @@
 //! refusals of bad input.
 
 use std::path::Path;
-use std::process::{Command, Output};
 
 use sinew_grid::Field;
+use sinew_testkit::{text, Sinew};
 
-fn sinew(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).args(args).output().expect("run sinew")
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 /// Width and height from a PNG file: 8-byte signature, then the IHDR chunk (length, "IHDR",
 /// width and height as big-endian u32) (PNG specification, ISO/IEC 15948, section 11.2.2).
@@ -26,8 +20,7 @@ fn png_size(p: &Path) -> (u32, u32) {
 
 /// Two small demo subjects and a smooth field on subject 0's grid (voxel units).
 fn setup(dir: &Path) -> (String, String, String, String, String) {
-    let out = sinew(&["demo", "--small", "--subjects", "2", "--out", dir.join("data").to_str().unwrap()]);
-    assert!(out.status.success(), "{}", text(&out.stderr));
+    SINEW.demo(&dir.join("data"), 2, &[]);
     let s = |n: &str| dir.join("data").join(n).to_str().unwrap().to_string();
     let fixed = sinew_io::read_image(Path::new(&s("subject_00_image.nii.gz"))).unwrap();
     let mut f = Field::zeros(fixed.grid.clone());
@@ -49,12 +42,12 @@ fn setup(dir: &Path) -> (String, String, String, String, String) {
 
 #[test]
 fn writes_a_sheet_and_refuses_bad_input() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let (fixed, moving, fl, ml, field) = setup(tmp.path());
     let png = tmp.path().join("qc.png");
     let p = png.to_str().unwrap();
     let base = ["qc", "-f", &fixed, "-m", &moving, "--field", &field];
-    let out = sinew(&[&base[..], &["--fixed-labels", &fl, "--moving-labels", &ml, "-o", p]].concat());
+    let out = SINEW.run(&[&base[..], &["--fixed-labels", &fl, "--moving-labels", &ml, "-o", p]].concat());
     assert!(out.status.success(), "{}", text(&out.stderr));
     let (w, h) = png_size(&png);
     // Six panels of at least 120 px side by side, three rows: a sheet, not a thumbnail.
@@ -64,8 +57,8 @@ fn writes_a_sheet_and_refuses_bad_input() {
 
     // A chosen point and window, without labels.
     let png2 = tmp.path().join("qc2.png");
-    let out =
-        sinew(&[&base[..], &["--point", "10,20,30", "--window", "-100,200", "-o", png2.to_str().unwrap()]].concat());
+    let out = SINEW
+        .run(&[&base[..], &["--point", "10,20,30", "--window", "-100,200", "-o", png2.to_str().unwrap()]].concat());
     assert!(out.status.success(), "{}", text(&out.stderr));
     assert!(text(&out.stdout).contains("[10, 20, 30]"));
     // The same grid gives the same width; without labels there is no legend row below.
@@ -80,7 +73,7 @@ fn writes_a_sheet_and_refuses_bad_input() {
         (vec!["--window", "300,-200"], "lo < hi"),
         (vec!["--window", "a,b"], "not a number"),
     ] {
-        let out = sinew(&[&base[..], &extra[..], &["-o", b]].concat());
+        let out = SINEW.run(&[&base[..], &extra[..], &["-o", b]].concat());
         assert_eq!(out.status.code(), Some(2), "{extra:?}");
         assert!(text(&out.stderr).contains(needle), "{extra:?}: {}", text(&out.stderr));
         assert!(!bad.exists());
@@ -89,11 +82,11 @@ fn writes_a_sheet_and_refuses_bad_input() {
     let other = tmp.path().join("other_field.nii.gz");
     let g = sinew_grid::Grid::axis_aligned([10, 10, 10], [4.0; 3], [0.0; 3]);
     sinew_io::write_field(&other, &Field::zeros(g), sinew_io::FieldUnits::Voxel).unwrap();
-    let out = sinew(&["qc", "-f", &fixed, "-m", &moving, "--field", other.to_str().unwrap(), "-o", b]);
+    let out = SINEW.run(&["qc", "-f", &fixed, "-m", &moving, "--field", other.to_str().unwrap(), "-o", b]);
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("fixed grid"), "{}", text(&out.stderr));
     // Never overwrite an input.
-    let out = sinew(&["qc", "-f", &fixed, "-m", &moving, "--field", &field, "-o", &moving]);
+    let out = SINEW.run(&["qc", "-f", &fixed, "-m", &moving, "--field", &field, "-o", &moving]);
     assert_eq!(out.status.code(), Some(2));
 }
 
@@ -113,10 +106,10 @@ fn qc_record(dir: &Path) -> serde_json::Value {
 
 #[test]
 fn qc_window_of_register_cohort_and_demo() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let (fixed, moving, _, _, _) = setup(tmp.path());
     let run = |args: &[&str]| {
-        let out = sinew(args);
+        let out = SINEW.run(args);
         assert!(out.status.success(), "{args:?}: {}", text(&out.stderr));
     };
     let fast = ["--preset", "fast", "-q"];
@@ -157,7 +150,7 @@ fn qc_window_of_register_cohort_and_demo() {
         vec!["cohort", "--all-pairs", data.to_str().unwrap(), "-o", "never", "--qc-window", "a,b"],
         vec!["demo", "--out", "never", "--qc-window", "1,2,3"],
     ] {
-        let out = sinew(&cmd);
+        let out = SINEW.run(&cmd);
         assert_eq!(out.status.code(), Some(2), "{cmd:?}");
         assert!(text(&out.stderr).contains("--qc-window"), "{cmd:?}: {}", text(&out.stderr));
         assert!(!Path::new("never").exists());

@@ -2,17 +2,16 @@
 //! The HTML is checked with Python's standard-library parser (`html.parser`) and opened in
 //! headless Chromium (Debian's `chromium` package), which must log no console message.
 
+use sinew_testkit::{text, Sinew};
 use std::fmt::Write as _;
 use std::path::Path;
 use std::process::{Command, Output};
 
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
+
 const METHODS: [&str; 2] = ["sinew", "other-net"];
 const LABELS: [(u16, &str); 3] = [(1, "liver"), (2, "spleen"), (3, "kidney_right")];
 const SUBJECTS: [&str; 4] = ["s00", "s01", "s02", "s03"];
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
 
 /// A cohort folder: scores.csv with the columns `sinew cohort` writes plus an extra one,
 /// summary.json, and a qc.png in each sinew pair folder.
@@ -145,12 +144,13 @@ fn chromium(browser: &Path, page: &Path, screenshot: &Path, tmp: &Path) -> Vec<S
 
 #[test]
 fn report_is_self_contained_html_with_one_plot_per_label_and_method() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let dir = tmp.path().join("cohort");
     std::fs::create_dir_all(&dir).unwrap();
     cohort(&dir);
     let html = dir.join("report.html");
-    let out = Command::new(env!("CARGO_BIN_EXE_sinew"))
+    let out = SINEW
+        .cmd()
         .args(["report", "--cohort", dir.to_str().unwrap(), "--out", html.to_str().unwrap()])
         .output()
         .unwrap();
@@ -225,9 +225,10 @@ fn report_is_self_contained_html_with_one_plot_per_label_and_method() {
 
 #[test]
 fn missing_or_malformed_tables_are_clear_errors() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let run = |dir: &Path| {
-        Command::new(env!("CARGO_BIN_EXE_sinew"))
+        SINEW
+            .cmd()
             .args(["report", "--cohort", dir.to_str().unwrap(), "--out", tmp.path().join("r.html").to_str().unwrap()])
             .output()
             .unwrap()

@@ -8,18 +8,12 @@
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
-fn sinew() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_sinew"))
-}
+use sinew_testkit::{run_ok, Sinew};
 
-#[track_caller]
-fn run_ok(cmd: &mut Command) {
-    let out = cmd.output().unwrap();
-    assert!(out.status.success(), "{cmd:?} failed: {}", String::from_utf8_lossy(&out.stderr));
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 fn demo(dir: &Path) -> (PathBuf, PathBuf, PathBuf) {
-    run_ok(sinew().args(["demo", "--small", "--subjects", "2", "-q", "--out"]).arg(dir));
+    SINEW.demo(dir, 2, &[]);
     (dir.join("subject_00_image.nii.gz"), dir.join("subject_01_image.nii.gz"), dir.join("subject_01_labels.nii.gz"))
 }
 
@@ -27,7 +21,8 @@ const ITER: &str = "--iterations=5,5,5,5";
 
 fn register(fixed: &Path, moving: &Path, labels: &Path, out: &Path, threads: usize) {
     run_ok(
-        sinew()
+        SINEW
+            .cmd()
             .args(["register", "-q", "--preset", "fast", ITER, "-j", &threads.to_string(), "-f"])
             .arg(fixed)
             .arg("-m")
@@ -56,7 +51,7 @@ fn report(dir: &Path) -> serde_json::Value {
 
 #[test]
 fn same_threads_same_bytes_and_thread_count_changes_little() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let (fixed, moving, labels) = demo(&tmp.path().join("demo"));
     let (a, b, c) = (tmp.path().join("a"), tmp.path().join("b"), tmp.path().join("c"));
     register(&fixed, &moving, &labels, &a, 2);

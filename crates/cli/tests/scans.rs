@@ -6,15 +6,14 @@
 //! frames are), and `qc.png` is decoded with the `png` crate.
 
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Output;
 
 use sinew_grid::{Grid, Image, Volume};
+use sinew_testkit::Sinew;
 
 const SHAPE: [usize; 3] = [20, 16, 24];
 
-fn sinew() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_sinew"))
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 /// A smooth blob (a body) on a 4 mm grid with origin `origin`, `nk` slices along k.
 fn blob(origin: [f64; 3], nk: usize, shift: f32) -> Image {
@@ -37,7 +36,7 @@ fn write(dir: &Path, name: &str, img: &Image) -> PathBuf {
 }
 
 fn register(fixed: &Path, moving: &Path, out: &Path, extra: &[&str]) -> Output {
-    let mut c = sinew();
+    let mut c = SINEW.cmd();
     c.args(["register", "-q", "-j", "1", "--iterations", "4,4,4,4", "-f"]).arg(fixed).arg("-m").arg(moving).arg("-o");
     c.arg(out).args(extra);
     c.output().unwrap()
@@ -49,7 +48,7 @@ fn report(out: &Path) -> serde_json::Value {
 
 #[test]
 fn nan_voxels_refused_by_default_padded_or_replaced_on_request() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     // The first 3 slices outside the scanned volume, marked NaN as some exports do:
     // 20 × 16 × 3 = 960 voxels.
     let mut fixed = blob([-40.0, -30.0, -46.0], SHAPE[2], 0.0);
@@ -101,7 +100,7 @@ fn nan_voxels_refused_by_default_padded_or_replaced_on_request() {
 
 #[test]
 fn small_overlap_of_the_bodies_is_warned_about() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let f = write(dir.path(), "fixed.nii.gz", &blob([-40.0, -30.0, -46.0], SHAPE[2], 0.0));
     let near = write(dir.path(), "near.nii.gz", &blob([-40.0, -30.0, -46.0], SHAPE[2], 1.0));
     // The same body 300 mm away in the moving scan's frame (3.75 fields of view of 80 mm),
@@ -134,7 +133,7 @@ fn padding_pixels(png_path: &Path) -> usize {
 
 #[test]
 fn qc_draws_the_region_outside_the_moving_scan_as_padding() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let f = write(dir.path(), "fixed.nii.gz", &blob([-40.0, -30.0, -46.0], SHAPE[2], 0.0));
     let full = write(dir.path(), "full.nii.gz", &blob([-40.0, -30.0, -46.0], SHAPE[2], 1.0));
     // The moving scan covers only the lower 14 of the fixed scan's 24 slices.

@@ -1,25 +1,23 @@
 //! `sinew score` end to end: fields in every accepted form (NIfTI mm, .npy channel-last and
 //! channel-first, push), landmarks, CSV, and HD95 against a scipy reference run at test time.
 
-use std::path::Path;
 use std::process::{Command, Output};
 
 use ndarray::Array4;
 use serde_json::Value;
 use sinew_grid::{Field, Grid, LabelMap};
 use sinew_io::FieldUnits;
+use sinew_testkit::{p, Sinew};
+
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 fn sinew(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).arg("score").args(args).output().expect("run sinew")
+    SINEW.cmd().arg("score").args(args).output().expect("run sinew")
 }
 
 fn json(out: &Output) -> Value {
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     serde_json::from_slice(&out.stdout).expect("JSON on stdout")
-}
-
-fn p(path: &Path) -> &str {
-    path.to_str().unwrap()
 }
 
 /// A box `[lo, hi)` of `label` on a zero map.
@@ -46,7 +44,7 @@ fn shift_field(grid: &Grid, shift: [f32; 3]) -> Field {
 
 #[test]
 fn every_field_form_recovers_a_known_shift() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let d = tmp.path();
     // 2 × 1.5 × 3 mm voxels; the moving box is the fixed box moved by +2 voxels along i.
     let grid = Grid::axis_aligned([16, 12, 10], [2.0, 1.5, 3.0], [-10.0, 4.0, 0.0]);
@@ -122,7 +120,7 @@ fn every_field_form_recovers_a_known_shift() {
 
 #[test]
 fn hd95_and_csv_agree_with_scipy_on_a_warped_pair() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let d = tmp.path();
     let grid = Grid::axis_aligned([20, 18, 14], [1.2, 0.9, 2.5], [0.0; 3]);
     // Two labels; the field leaves a residual shift, so surface distances are not trivial.
@@ -139,7 +137,14 @@ fn hd95_and_csv_agree_with_scipy_on_a_warped_pair() {
     sinew_io::write_labels(&d.join("m.nii.gz"), &moving).unwrap();
     let field = shift_field(&grid, [1.0, -1.0, 0.0]);
     sinew_io::write_field(&d.join("u.nii.gz"), &field, FieldUnits::Mm).unwrap();
-    let warped = sinew_transform::warp_labels(&moving, &field).unwrap();
+    // Pulled through the whole-voxel shift u = (1, −1, 0): warped(i, j, k) = moving(i + 1,
+    // j − 1, k), written out here (exact; the boxes keep off the faces, so beyond them is 0).
+    let mut warped = LabelMap::filled(grid.clone(), 0);
+    for ((i, j, k), v) in warped.data.indexed_iter_mut() {
+        if i + 1 < 20 && j >= 1 {
+            *v = moving.data[[i + 1, j - 1, k]];
+        }
+    }
     sinew_io::write_labels(&d.join("w.nii.gz"), &warped).unwrap();
     let (f, m, u, w) = (d.join("f.nii.gz"), d.join("m.nii.gz"), d.join("u.nii.gz"), d.join("w.nii.gz"));
     let v = json(&sinew(&["--fixed-labels", p(&f), "--moving-labels", p(&m), "--field", p(&u)]));
@@ -193,7 +198,7 @@ print(json.dumps(out))
 
 #[test]
 fn bad_inputs_are_refused() {
-    let tmp = tempfile::tempdir().unwrap();
+    let tmp = sinew_testkit::tempdir();
     let d = tmp.path();
     let grid = Grid::axis_aligned([6, 6, 6], [1.0; 3], [0.0; 3]);
     let l = boxed(&grid, [1, 1, 1], [4, 4, 4], 1);

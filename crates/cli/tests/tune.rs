@@ -2,31 +2,20 @@
 //! config read back by `sinew register --config`, resume after SIGKILL, shards, the time
 //! budget, and bad input.
 
+use sinew_testkit::{ok, p, Sinew};
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output, Stdio};
+use std::process::{Output, Stdio};
 use std::sync::OnceLock;
 use std::time::{Duration, Instant};
 
-fn sinew(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_sinew")).args(args).output().expect("run sinew")
-}
-
-#[track_caller]
-fn ok(out: Output) -> Output {
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    out
-}
-
-fn p(path: &Path) -> &str {
-    path.to_str().unwrap()
-}
+const SINEW: Sinew = Sinew::new(env!("CARGO_BIN_EXE_sinew"));
 
 /// Four small demo subjects (6 pairs), written once for all tests of this file.
 fn demo() -> &'static Path {
     static DIR: OnceLock<PathBuf> = OnceLock::new();
     DIR.get_or_init(|| {
         let dir = std::env::temp_dir().join(format!("sinew-tune-demo-{}", std::process::id()));
-        ok(sinew(&["demo", "--small", "--subjects", "4", "--data-only", "--out", p(&dir), "-q"]));
+        SINEW.demo(&dir, 4, &["--data-only"]);
         dir
     })
 }
@@ -57,7 +46,7 @@ fn tune_args<'a>(out: &'a Path, extra: &[&'a str]) -> Vec<&'a str> {
 }
 
 fn tune(out: &Path, extra: &[&str]) -> Output {
-    sinew(&tune_args(out, extra))
+    SINEW.run(&tune_args(out, extra))
 }
 
 /// trials.csv without the wall-time column (wall times differ between runs).
@@ -86,7 +75,7 @@ fn json(path: &Path) -> serde_json::Value {
 fn reference_run() -> &'static Path {
     static DIR: OnceLock<PathBuf> = OnceLock::new();
     DIR.get_or_init(|| {
-        let dir = tempfile::tempdir().unwrap().keep();
+        let dir = sinew_testkit::tempdir().keep();
         ok(tune(&dir, &[]));
         dir
     })
@@ -157,10 +146,10 @@ fn written_config_round_trips_through_register() {
     let result = json(&out.join("result.json"));
     let best = result["best_trial"].as_u64().unwrap();
     let rec = json(&out.join(format!("trials/trial-{best:04}.json")));
-    let reg = tempfile::tempdir().unwrap();
+    let reg = sinew_testkit::tempdir();
     let d = demo();
     let f = |n: &str| d.join(n).to_str().unwrap().to_string();
-    ok(sinew(&[
+    ok(SINEW.run(&[
         "register",
         "-f",
         &f("subject_00_image.nii.gz"),
@@ -180,7 +169,7 @@ fn written_config_round_trips_through_register() {
     // shortest form).
     assert_eq!(report["params"], rec["params"]);
     // The cohort and demo commands accept it too (parse and validate only: --list stops there).
-    ok(sinew(&[
+    ok(SINEW.run(&[
         "cohort",
         "--all-pairs",
         p(d),
@@ -195,14 +184,9 @@ fn written_config_round_trips_through_register() {
 #[test]
 fn killed_search_resumes_with_the_same_trials_and_result() {
     let reference = reference_run();
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let out = dir.path().join("t");
-    let mut child = Command::new(env!("CARGO_BIN_EXE_sinew"))
-        .args(tune_args(&out, &[]))
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
+    let mut child = SINEW.cmd().args(tune_args(&out, &[])).stdout(Stdio::null()).stderr(Stdio::null()).spawn().unwrap();
     // Kill while the second trial runs: after the first trial's record appears.
     let t0 = Instant::now();
     while !out.join("trials/trial-0000.json").exists() {
@@ -234,15 +218,10 @@ fn killed_search_resumes_with_the_same_trials_and_result() {
 #[test]
 fn shards_running_side_by_side_give_the_unsharded_trials() {
     let reference = reference_run();
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let out = dir.path().join("t");
     let spawn = |k: &str| {
-        Command::new(env!("CARGO_BIN_EXE_sinew"))
-            .args(tune_args(&out, &["--shard", k]))
-            .stdout(Stdio::null())
-            .stderr(Stdio::piped())
-            .spawn()
-            .unwrap()
+        SINEW.cmd().args(tune_args(&out, &["--shard", k])).stdout(Stdio::null()).stderr(Stdio::piped()).spawn().unwrap()
     };
     let (a, b) = (spawn("1/2"), spawn("2/2"));
     for c in [a, b] {
@@ -254,7 +233,7 @@ fn shards_running_side_by_side_give_the_unsharded_trials() {
 
 #[test]
 fn a_time_budget_no_setting_meets_ends_with_the_closest_setting() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let out = dir.path().join("t");
     let o = tune(&out, &["--time-budget", "0.000001"]);
     assert_eq!(o.status.code(), Some(2));
@@ -279,7 +258,7 @@ fn a_time_budget_no_setting_meets_ends_with_the_closest_setting() {
 
 #[test]
 fn bad_input_is_one_line_and_exit_2() {
-    let dir = tempfile::tempdir().unwrap();
+    let dir = sinew_testkit::tempdir();
     let out = dir.path().join("t");
     let d = demo();
     let first_line = |o: &Output| {
@@ -294,14 +273,14 @@ fn bad_input_is_one_line_and_exit_2() {
     ] {
         let mut a = vec!["tune", "--all-pairs", p(d), "--out", p(&out)];
         a.extend(args.iter().copied());
-        let o = sinew(&a);
+        let o = SINEW.run(&a);
         assert_eq!(o.status.code(), Some(2), "{args:?}");
         assert!(first_line(&o).contains(needle), "{args:?}: {}", first_line(&o));
     }
     // An empty pair list names the file.
     let empty = dir.path().join("pairs.csv");
     std::fs::write(&empty, "fixed,moving\n").unwrap();
-    let o = sinew(&["tune", "--all-pairs", p(d), "--pairs", p(&empty), "--out", p(&out)]);
+    let o = SINEW.run(&["tune", "--all-pairs", p(d), "--pairs", p(&empty), "--out", p(&out)]);
     assert_eq!(o.status.code(), Some(2));
     let err = String::from_utf8_lossy(&o.stderr);
     assert_eq!(err.lines().count(), 1, "{err}");
@@ -309,7 +288,7 @@ fn bad_input_is_one_line_and_exit_2() {
     // A single pair cannot be split.
     let one = dir.path().join("one.csv");
     std::fs::write(&one, "fixed,moving\nsubject_00,subject_01\n").unwrap();
-    let o = sinew(&["tune", "--all-pairs", p(d), "--pairs", p(&one), "--out", p(&out)]);
+    let o = SINEW.run(&["tune", "--all-pairs", p(d), "--pairs", p(&one), "--out", p(&out)]);
     assert_eq!(o.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&o.stderr).contains("at least 2"));
     // No output folder was made by any of them.

@@ -2,10 +2,9 @@
 //!
 //! `cargo run -p sinew-features --release --example bench_mind [-- THREADS]` (default: rayon's).
 
-use std::time::Instant;
-
 use sinew_features::{mind_ssc_into, Descriptor, MindParams, MindScratch};
 use sinew_grid::{Grid, Image};
+use sinew_testkit::time_runs;
 
 fn main() {
     let threads: usize = std::env::args().nth(1).map(|s| s.parse().expect("THREADS must be a number")).unwrap_or(0);
@@ -23,25 +22,14 @@ fn main() {
     let p = MindParams::default();
     let mut out = Descriptor::zeros(grid);
     let mut scratch = MindScratch::default();
-    let times: Vec<f64> = pool.install(|| {
-        mind_ssc_into(&img, &p, &mut out, &mut scratch);
-        (0..5)
-            .map(|_| {
-                let t = Instant::now();
-                mind_ssc_into(&img, &p, &mut out, &mut scratch);
-                t.elapsed().as_secs_f64()
-            })
-            .collect()
-    });
-    let mut sorted = times.clone();
-    sorted.sort_by(f64::total_cmp);
+    let (median, times) = pool.install(|| time_runs(5, || mind_ssc_into(&img, &p, &mut out, &mut scratch)));
     println!(
         "mind_ssc {:?} r={} d={} threads={}: median {:.3} s (runs {:?})",
         shape,
         p.radius,
         p.dilation,
         pool.current_num_threads(),
-        sorted[2],
+        median,
         times.iter().map(|t| format!("{t:.3}")).collect::<Vec<_>>()
     );
 }

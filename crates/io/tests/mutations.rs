@@ -11,6 +11,8 @@
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
+use sinew_testkit::SplitMix64;
+
 #[path = "../../../fuzz/src/check.rs"]
 #[allow(dead_code)]
 mod check;
@@ -28,22 +30,6 @@ fn files_in(dir: &Path) -> Vec<PathBuf> {
     v
 }
 
-/// SplitMix64 (a fixed, documented generator, so the sequence is the same everywhere).
-struct Rng(u64);
-
-impl Rng {
-    fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-    fn below(&mut self, n: usize) -> usize {
-        (self.next() % n.max(1) as u64) as usize
-    }
-}
-
 /// Offsets of the NIfTI-1 header fields that drive the reader (nifti1.h): dim[0..8] (40),
 /// intent_code (68), datatype (70), bitpix (72), pixdim[0..8] (76), vox_offset (108),
 /// scl_slope (112), scl_inter (116), qform_code (252), sform_code (254), quatern_b.. and
@@ -53,7 +39,7 @@ const F32_FIELDS: [usize; 12] = [76, 80, 84, 88, 108, 112, 116, 256, 268, 280, 3
 const I16_VALUES: [i16; 12] = [0, 1, -1, 2, 3, 5, 7, 8, 16, 64, i16::MAX, i16::MIN];
 const F32_VALUES: [f32; 10] = [0.0, -0.0, 1.0, -1.0, 348.0, 351.0, 1e30, -1e30, f32::NAN, f32::INFINITY];
 
-fn mutate(rng: &mut Rng, seed: &[u8]) -> Vec<u8> {
+fn mutate(rng: &mut SplitMix64, seed: &[u8]) -> Vec<u8> {
     let mut b = seed.to_vec();
     for _ in 0..1 + rng.below(4) {
         let plain_header = b.len() >= 348 && !(b[0] == 0x1f && b[1] == 0x8b);
@@ -84,7 +70,7 @@ fn mutate(rng: &mut Rng, seed: &[u8]) -> Vec<u8> {
             }
             5 => {
                 let n = rng.below(64);
-                b.extend((0..n).map(|_| rng.next() as u8));
+                b.extend((0..n).map(|_| rng.next_u64() as u8));
             }
             _ => {}
         }
@@ -124,7 +110,7 @@ fn seeded_mutations_and_fuzz_regressions() {
     assert!(valid >= 10, "only {valid} seeds are readable");
     assert!(check::peak() > 0, "the allocation recorder is not installed");
     let n: usize = std::env::var("SINEW_MUTATIONS").ok().and_then(|v| v.parse().ok()).unwrap_or(4000);
-    let mut rng = Rng(0x5EED_0F51_11E7);
+    let mut rng = SplitMix64(0x5EED_0F51_11E7);
     let mut accepted = 0;
     for _ in 0..n {
         let seed = &seeds[rng.below(seeds.len())];

@@ -3,22 +3,13 @@
 //!
 //! `cargo run -p sinew-transform --release --example bench_transform [-- THREADS]`
 
-use std::time::Instant;
-
 use sinew_grid::{Border, Field, Grid, Image, LabelMap};
+use sinew_testkit::time_runs;
 use sinew_transform::{jacobian_determinant, jacobian_stats, warp_image_into, warp_labels};
 
-fn median_secs(mut f: impl FnMut()) -> f64 {
-    f();
-    let mut t: Vec<f64> = (0..5)
-        .map(|_| {
-            let s = Instant::now();
-            f();
-            s.elapsed().as_secs_f64()
-        })
-        .collect();
-    t.sort_by(f64::total_cmp);
-    t[2]
+/// The median seconds of 5 runs of `f` after one warm-up.
+fn median_secs(f: impl FnMut()) -> f64 {
+    time_runs(5, f).0
 }
 
 fn main() {
