@@ -175,6 +175,13 @@ def make_io_nifti(out_dir):
     img = nib.Nifti1Image(field, oblique)
     img.header.set_intent(1006)
     _io_save(out_dir, "io_field5d.nii.gz", img, sidecar)
+    # The same vectors in voxels along (i, j, k): the file's mm vectors m solved against the
+    # linear part L of nibabel's affine (m = L v), component-first in C order of (c, i, j, k).
+    back = nib.load(os.path.join(out_dir, "io_field5d.nii.gz"))
+    lin = np.asarray(back.affine, dtype=np.float64)[:3, :3]
+    mm = back.get_fdata(dtype=np.float64)[:, :, :, 0, :]
+    vox = np.linalg.solve(lin, mm.reshape(-1, 3).T).reshape((3,) + mm.shape[:3])
+    sidecar["io_field5d.nii.gz"]["voxels_cijk"] = [float(v) for v in vox.ravel(order="C")]
 
     with open(os.path.join(out_dir, "io_nibabel.json"), "w") as f:
         json.dump({"source": "nibabel " + nib.__version__, "files": sidecar}, f, indent=1, sort_keys=True)

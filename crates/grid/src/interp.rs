@@ -253,7 +253,7 @@ mod tests {
         }
         // grid-constant: half a voxel outside blends half of the constant in
         let v = trilinear(&data, shape, [-0.5, 0.0, 0.0], Border::Constant(0.0));
-        assert!((v - 0.5 * f(0.0, 0.0, 0.0)).abs() < 1e-6);
+        approx::assert_abs_diff_eq!(v, 0.5 * f(0.0, 0.0, 0.0), epsilon = 1e-6);
         assert_eq!(nearest(&data, shape, [0.6, 1.4, 5.4], -1.0), f(1.0, 1.0, 5.0));
         assert_eq!(nearest(&data, shape, [3.6, 1.0, 1.0], -1.0), -1.0);
     }

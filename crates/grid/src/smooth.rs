@@ -121,9 +121,9 @@ mod tests {
         // A symmetric kernel leaves a linear ramp unchanged away from the border (exact fact).
         let mut r = Array3::<f32>::from_shape_fn((20, 3, 3), |(i, _, _)| i as f32);
         gaussian_smooth(&mut r, [1.0, 1.0, 1.0], 1.0);
-        assert!((r[[10, 1, 1]] - 10.0).abs() < 1e-4);
+        approx::assert_abs_diff_eq!(r[[10, 1, 1]], 10.0, epsilon = 1e-4);
         let k = gaussian_kernel(1.0);
         assert_eq!(k.len(), 7);
-        assert!((k.iter().sum::<f32>() - 1.0).abs() < 1e-6);
+        approx::assert_abs_diff_eq!(k.iter().sum::<f32>(), 1.0, epsilon = 1e-6);
     }
 }

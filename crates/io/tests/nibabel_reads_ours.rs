@@ -5,6 +5,7 @@
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
+use approx::assert_relative_eq;
 use ndarray::Array3;
 use serde_json::Value;
 use sinew_grid::{Affine, Field, Grid, Image, LabelMap};
@@ -145,22 +146,39 @@ fn nibabel_reads_what_we_write() {
         }
     }
 
-    // Fields: (nx, ny, nz, 1, 3) float32, intent 1006, units in intent_name.
-    for (p, units, want) in
-        [(&paths[4], "sinew-mm", field.to_world_mm()), (&paths[5], "sinew-vox", field.to_voxel_channel_last())]
-    {
+    // Fields: (nx, ny, nz, 1, 3) float32, intent 1006, units in intent_name; values in C order
+    // of (i, j, k, 1, c), component c of voxel n at n·3 + c. In mm the vector is nibabel's
+    // affine applied to the voxel vector, m_r = Σ_c A[r][c]·u_c (the header stores float32).
+    let voxels: Vec<[f64; 3]> =
+        (0..rigid.len()).map(|n| std::array::from_fn(|c| field.component(c)[n] as f64)).collect();
+    for (p, units) in [(&paths[4], "sinew-mm"), (&paths[5], "sinew-vox")] {
         let v = get(p);
         assert_eq!(v["shape"], serde_json::json!([6, 5, 4, 1, 3]));
         assert_eq!(v["dtype"], "float32");
         assert_eq!(v["intent_code"], 1006);
         assert_eq!(v["intent_name"], units);
         check_affine(units, &v["affine"], &rigid);
-        // C order of (i, j, k, 1, c) = channel-last standard layout.
-        assert_eq!(f32s(&v["data"]), want.as_slice().unwrap(), "{units}");
+        let (data, a) = (f64s(&v["data"]), rows(&v["affine"]));
+        assert_eq!(data.len(), 3 * voxels.len(), "{units}");
+        for (n, u) in voxels.iter().enumerate() {
+            for r in 0..3 {
+                let got = data[n * 3 + r];
+                if units == "sinew-mm" {
+                    let want: f64 = (0..3).map(|c| a[r][c] * u[c]).sum();
+                    assert_relative_eq!(got, want, epsilon = 1e-5, max_relative = 1e-5);
+                } else {
+                    assert_eq!(got as f32, u[r] as f32, "{units}: voxel {n} component {r}");
+                }
+            }
+        }
     }
     let npy = get(&paths[6]);
     assert_eq!(npy["shape"], serde_json::json!([6, 5, 4, 3]));
     assert_eq!(npy["dtype"], "<f4");
     assert_eq!(npy["fortran_order"], false);
-    assert_eq!(f32s(&npy["data"]), field.to_voxel_channel_last().as_slice().unwrap());
+    let data = f32s(&npy["data"]);
+    assert_eq!(data.len(), 3 * voxels.len());
+    for (n, u) in voxels.iter().enumerate() {
+        assert_eq!(data[n * 3..n * 3 + 3], u.map(|x| x as f32), ".npy: voxel {n}");
+    }
 }

@@ -1,6 +1,20 @@
 //! A plain 8-bit RGB raster with the few drawing operations the sheets need (rectangles,
 //! anti-aliased lines, text), PNG encoding through the `png` crate and text through
 //! `ab_glyph` with the embedded DejaVu Sans font.
+//!
+//! Why lines are drawn here rather than by a drawing crate: the deformed grid of the field
+//! panel is made of segments whose ends lie between pixels (grid nodes moved by the field,
+//! scaled by the panel's mm per pixel), and `line` keeps those fractions. The two candidates
+//! take whole-pixel ends: the plotters bitmap backend (already in the tree, for the report's
+//! plots) draws through `DrawingBackend::draw_line(from, to, …)` with `BackendCoord =
+//! (i32, i32)` (plotters-backend 0.3.7), and imageproc's `draw_antialiased_line_segment_mut`
+//! takes `start: (i32, i32), end: (i32, i32)` (imageproc is not in the tree; it would also
+//! bring the `image` crate). Rounding the ends moves each segment by up to half a pixel, a
+//! third of a millimetre on the QC test sheet (0.65 mm per pixel), which is the size of the
+//! sub-voxel motion the panel is meant to show. Text already goes through `ab_glyph` (glyph
+//! outlines and coverage); only the pen advance with kerning is written here, as both
+//! candidates also do on top of `ab_glyph`. `blend` is the one-line "over" rule those lines
+//! and glyphs need.
 
 use std::path::Path;
 use std::sync::OnceLock;

@@ -1,5 +1,6 @@
 //! QC sheet checks: size and proportions, every panel drawn, folds marked exactly.
 
+use approx::{assert_abs_diff_eq, assert_relative_eq};
 use sinew_grid::{Border, Field, Grid, Image, LabelMap};
 use sinew_qc::colour::{jacobian_colour, label_colour, BACKGROUND, FOLD};
 use sinew_qc::sheet::{LEGEND_SWATCH, LETTER};
@@ -66,27 +67,60 @@ fn folded(i: usize, j: usize, k: usize) -> bool {
     i > I0 && i < I1 && J.contains(&j) && K.contains(&k)
 }
 
+/// The phantom pair (the moving ellipsoid shifted by (2, −1, 2) voxels), every intensity
+/// mapped by `map`, with `field`, the moving scan warped by it and, when `labelled`, the label
+/// maps of both scans and the warped moving labels.
+struct Pair {
+    fixed: Image,
+    moving: Image,
+    warped: Image,
+    field: Field,
+    jacdet: Image,
+    labels: Option<[LabelMap; 3]>,
+}
+
+impl Pair {
+    fn new(map: impl Fn(f32) -> f32, field: Field, labelled: bool) -> Pair {
+        let mapped = |mut img: Image| {
+            img.as_slice_mut().iter_mut().for_each(|v| *v = map(*v));
+            img
+        };
+        let (f, m) = (phantom([20.0, 16.0, 24.0]), phantom([22.0, 15.0, 26.0]));
+        let labels = labelled.then(|| {
+            let (fl, ml) = (labels_of(&f), labels_of(&m));
+            let wl = sinew_transform::warp_labels(&ml, &field).unwrap();
+            [fl, ml, wl]
+        });
+        let (fixed, moving) = (mapped(f), mapped(m));
+        let warped = sinew_transform::warp_image(&moving, &field, Border::Constant(map(-900.0))).unwrap();
+        let jacdet = sinew_transform::jacobian_determinant(&field);
+        Pair { fixed, moving, warped, field, jacdet, labels }
+    }
+
+    fn input<'a>(&'a self, label_names: Option<&'a std::collections::BTreeMap<u16, String>>) -> QcInput<'a> {
+        let l = self.labels.as_ref();
+        QcInput {
+            fixed: &self.fixed,
+            moving_on_fixed: &self.moving,
+            warped: &self.warped,
+            field: &self.field,
+            jacdet: &self.jacdet,
+            fixed_labels: l.map(|l| &l[0]),
+            moving_labels_on_fixed: l.map(|l| &l[1]),
+            warped_labels: l.map(|l| &l[2]),
+            title: "fixed a ← moving b".into(),
+            label_names,
+        }
+    }
+}
+
+/// The labelled pair with the folding field.
+fn folding_pair() -> Pair {
+    Pair::new(|v| v, folding_field(), true)
+}
+
 fn render(point: Option<[usize; 3]>) -> QcSheet {
-    let fixed = phantom([20.0, 16.0, 24.0]);
-    let moving = phantom([22.0, 15.0, 26.0]);
-    let field = folding_field();
-    let warped = sinew_transform::warp_image(&moving, &field, Border::Constant(-900.0)).unwrap();
-    let jacdet = sinew_transform::jacobian_determinant(&field);
-    let (fl, ml) = (labels_of(&fixed), labels_of(&moving));
-    let wl = sinew_transform::warp_labels(&ml, &field).unwrap();
-    let input = QcInput {
-        fixed: &fixed,
-        moving_on_fixed: &moving,
-        warped: &warped,
-        field: &field,
-        jacdet: &jacdet,
-        fixed_labels: Some(&fl),
-        moving_labels_on_fixed: Some(&ml),
-        warped_labels: Some(&wl),
-        title: "fixed a ← moving b".into(),
-        label_names: None,
-    };
-    render_qc_sheet(&input, &QcOptions { point, ..QcOptions::default() }).unwrap()
+    render_qc_sheet(&folding_pair().input(None), &QcOptions { point, ..QcOptions::default() }).unwrap()
 }
 
 #[test]
@@ -105,7 +139,7 @@ fn sheet_has_the_expected_size_proportions_and_non_empty_panels() {
     let img = &sheet.image;
     assert_eq!(sheet.panels.len(), 18);
     // Common pixel size: the longest extent (48 · 3 mm = 144 mm) over 220 px.
-    assert!((sheet.mm_per_px - 144.0 / 220.0).abs() < 1e-12);
+    assert_relative_eq!(sheet.mm_per_px, 144.0 / 220.0, max_relative = 1e-12);
     for p in &sheet.panels {
         let g = &p.plane;
         // Spacing respected: each side is n·spacing/pixel size, rounded.
@@ -132,10 +166,16 @@ fn sheet_has_the_expected_size_proportions_and_non_empty_panels() {
     // Width: margins, row labels, six columns of the widest panel and the colour bar.
     let col_w = sheet.panels.iter().map(|p| p.plane.width).max().unwrap().max(120);
     assert_eq!(img.width(), 14 + 78 + 6 * col_w + 5 * 8 + 96 + 14);
-    // Key figures: a 2-voxel shift lowers the overlap, the fold box is counted.
+    // Key figures: the fold box is counted, and a 2-voxel shift lowers the overlap: the
+    // figures are the mean Dice of labels 1 and 2, counted here voxel by voxel.
     let f = &sheet.figures;
     assert_eq!(f.labels, 2);
     assert_eq!(f.jacobian.folded_voxels, (I1 - I0 - 1) * J.len() * K.len());
+    let [fl, ml, wl] = folding_pair().labels.unwrap();
+    let mean_dice = |b: &LabelMap| (dice_by_count(&fl, b, 1) + dice_by_count(&fl, b, 2)) / 2.0;
+    assert_abs_diff_eq!(f.dice_before.unwrap(), mean_dice(&ml), epsilon = 1e-12);
+    assert_abs_diff_eq!(f.dice_after.unwrap(), mean_dice(&wl), epsilon = 1e-12);
+    assert!(f.dice_before.unwrap() < 0.9, "the shifted ellipsoids overlap in part: {:?}", f.dice_before);
 }
 
 #[test]
@@ -197,28 +237,9 @@ fn sheet_png_is_written_atomically_and_decodes() {
 /// The sheet of the phantom pair with every image mapped by `f` (labels left out, so panel
 /// pixels are grey levels only) and the given window.
 fn render_mapped(f: impl Fn(f32) -> f32, window: Window) -> QcSheet {
-    let map = |img: Image| {
-        let mut img = img;
-        img.as_slice_mut().iter_mut().for_each(|v| *v = f(*v));
-        img
-    };
-    let fixed = map(phantom([20.0, 16.0, 24.0]));
-    let moving = map(phantom([22.0, 15.0, 26.0]));
-    let field = Field::zeros(grid());
-    let jacdet = sinew_transform::jacobian_determinant(&field);
-    let input = QcInput {
-        fixed: &fixed,
-        moving_on_fixed: &moving,
-        warped: &moving,
-        field: &field,
-        jacdet: &jacdet,
-        fixed_labels: None,
-        moving_labels_on_fixed: None,
-        warped_labels: None,
-        title: "fixed a ← moving b".into(),
-        label_names: None,
-    };
-    render_qc_sheet(&input, &QcOptions { point: Some([20, 16, 24]), window, ..QcOptions::default() }).unwrap()
+    let pair = Pair::new(f, Field::zeros(grid()), false);
+    render_qc_sheet(&pair.input(None), &QcOptions { point: Some([20, 16, 24]), window, ..QcOptions::default() })
+        .unwrap()
 }
 
 /// Population variance of the grey levels over the fixed axial panel (its grey pixels: the
@@ -306,26 +327,13 @@ fn percentile_window_follows_its_definition() {
     assert_eq!(sinew_qc::resolve_window(Window::Auto, &img).unwrap().rule, WindowRule::Hounsfield);
 }
 
-/// The phantom pair with labels (1 = tissue shell, 2 = core) and the given label names.
+/// The phantom pair with labels (1 = tissue shell, 2 = core), a zero field and the given
+/// label names; also the fixed and moving label maps.
 fn render_named(names: Option<&std::collections::BTreeMap<u16, String>>) -> (QcSheet, LabelMap, LabelMap) {
-    let fixed = phantom([20.0, 16.0, 24.0]);
-    let moving = phantom([22.0, 15.0, 26.0]);
-    let field = Field::zeros(grid());
-    let jacdet = sinew_transform::jacobian_determinant(&field);
-    let (fl, ml) = (labels_of(&fixed), labels_of(&moving));
-    let input = QcInput {
-        fixed: &fixed,
-        moving_on_fixed: &moving,
-        warped: &moving,
-        field: &field,
-        jacdet: &jacdet,
-        fixed_labels: Some(&fl),
-        moving_labels_on_fixed: Some(&ml),
-        warped_labels: Some(&ml),
-        title: "fixed a ← moving b".into(),
-        label_names: names,
-    };
-    (render_qc_sheet(&input, &QcOptions::default()).unwrap(), fl, ml)
+    let pair = Pair::new(|v| v, Field::zeros(grid()), true);
+    let sheet = render_qc_sheet(&pair.input(names), &QcOptions::default()).unwrap();
+    let [fl, ml, _] = pair.labels.unwrap();
+    (sheet, fl, ml)
 }
 
 /// Dice by its definition 2|A ∩ B| / (|A| + |B|), counted here voxel by voxel.
@@ -366,8 +374,8 @@ fn headline_dice_leaves_out_the_whole_body_label() {
     let f = &sheet.figures;
     assert_eq!(f.body_label, Some(1));
     let (d1, d2) = (dice_by_count(&fl, &ml, 1), dice_by_count(&fl, &ml, 2));
-    assert!((f.dice_after_without_body.unwrap() - d2).abs() < 1e-12);
-    assert!((f.dice_after.unwrap() - (d1 + d2) / 2.0).abs() < 1e-12);
+    assert_abs_diff_eq!(f.dice_after_without_body.unwrap(), d2, epsilon = 1e-12);
+    assert_abs_diff_eq!(f.dice_after.unwrap(), (d1 + d2) / 2.0, epsilon = 1e-12);
     // The legend says which label is left out.
     assert!(sheet.legend[0].text.contains("not in the headline Dice"), "{}", sheet.legend[0].text);
     // Without names: label 1 holds most labelled voxels (the shell around the core), so it is
