@@ -14,7 +14,7 @@ fn cohort(demo: &Path, out: &Path, extra: &[&str]) -> Output {
     let mut args = vec!["cohort", "--all-pairs", p(demo), "--out", p(out), "-q", "--jobs", "1"];
     args.extend(QUICK);
     args.extend(extra);
-    SINEW.run(&args)
+    SINEW.run(args)
 }
 
 /// summary.json without the runtime entries.
@@ -54,7 +54,7 @@ fn shards_cover_every_pair_exactly_once() {
     let list = |extra: &[&str]| -> Vec<String> {
         let mut a = vec!["cohort", "--all-pairs", p(&dir), "--out", "unused", "--list"];
         a.extend(extra);
-        String::from_utf8(ok(SINEW.run(&a)).stdout).unwrap().lines().map(String::from).collect()
+        String::from_utf8(ok(SINEW.run(a)).stdout).unwrap().lines().map(String::from).collect()
     };
     let all = list(&[]);
     assert_eq!(all.len(), 15);
@@ -68,7 +68,7 @@ fn shards_cover_every_pair_exactly_once() {
         assert_eq!(seen, want, "N = {n}");
     }
     assert_eq!(
-        SINEW.run(&["cohort", "--all-pairs", p(&dir), "--out", "x", "--shard", "0/3", "--list"]).status.code(),
+        SINEW.run(["cohort", "--all-pairs", p(&dir), "--out", "x", "--shard", "0/3", "--list"]).status.code(),
         Some(2)
     );
 }
@@ -139,7 +139,7 @@ fn runs_resumes_after_a_kill_shards_merges_and_compares_methods() {
     ok(cohort(&demo, &s2, &["--shard", "2/2"]));
     assert!(s1.join("scores.shard-1-of-2.csv").is_file() && !s1.join("scores.csv").exists());
     assert_eq!(table_without_times(&s1.join("scores.shard-1-of-2.csv")).len(), 1 + 2 * 10); // pairs 0, 2
-    ok(SINEW.run(&["cohort", "merge", p(&s1), p(&s2), "--out", p(&merged)]));
+    ok(SINEW.run(["cohort", "merge", p(&s1), p(&s2), "--out", p(&merged)]));
     assert_eq!(table_without_times(&merged.join("scores.csv")), rows);
     assert_eq!(summary_without_runtime(&merged), summary_without_runtime(&full));
 

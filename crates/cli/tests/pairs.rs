@@ -15,12 +15,12 @@ fn a_pair_list_in_both_directions_scores_an_imported_method_with_its_runtimes() 
     std::fs::write(&list, "fixed,moving\nsubject_02,subject_00\nsubject_00,subject_02\nsubject_01,subject_00\n")
         .unwrap();
     // --list: the list's order is the pair index; both directions are separate pairs.
-    let listed = ok(SINEW.run(&["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list"]));
+    let listed = ok(SINEW.run(["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list"]));
     assert_eq!(
         String::from_utf8(listed.stdout).unwrap(),
         "0\tsubject_02\tsubject_00\n1\tsubject_00\tsubject_02\n2\tsubject_01\tsubject_00\n"
     );
-    let shard = ok(SINEW.run(&[
+    let shard = ok(SINEW.run([
         "cohort",
         "--all-pairs",
         p(&demo),
@@ -49,7 +49,7 @@ fn a_pair_list_in_both_directions_scores_an_imported_method_with_its_runtimes() 
     let import = || {
         let mut args = vec!["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", p(&out)];
         args.extend(["--method", "net", "--fields", p(&fields), "--runtimes", p(&times), "-q"]);
-        SINEW.run(&args)
+        SINEW.run(args)
     };
     ok(import());
     let mut rdr = csv::Reader::from_path(out.join("scores.csv")).unwrap();
@@ -77,7 +77,7 @@ fn a_pair_list_in_both_directions_scores_an_imported_method_with_its_runtimes() 
     // Bad lists: one line naming the file and the problem, exit code 2.
     for (text, says) in [("fixed,moving\nsubject_00,nobody\n", "nobody"), ("a,b\nx,y\n", "header")] {
         std::fs::write(&list, text).unwrap();
-        let r = SINEW.run(&["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list"]);
+        let r = SINEW.run(["cohort", "--all-pairs", p(&demo), "--pairs", p(&list), "--out", "x", "--list"]);
         let err = String::from_utf8_lossy(&r.stderr);
         assert_eq!(r.status.code(), Some(2));
         assert!(err.contains("test_pairs.csv") && err.contains(says) && err.lines().count() == 1, "{err}");

@@ -41,7 +41,7 @@ fn check(input: &Path, output: &Path, kind: &str, window: Option<[f32; 2]>) -> s
 /// The demo cohort (2 small subjects) and its rewritten copies in `raw/`.
 fn setup(tmp: &Path) -> (PathBuf, PathBuf) {
     let demo = tmp.join("demo");
-    let out = SINEW.run(&["demo", "--small", "--subjects", "2", "--quiet", "--out", s(&demo)]);
+    let out = SINEW.run(["demo", "--small", "--subjects", "2", "--quiet", "--out", s(&demo)]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let raw = tmp.join("raw");
     let said = python("prep_rewrite.py", &[s(&demo), s(&raw)]);
@@ -88,7 +88,7 @@ fn one_recipe_brings_differently_oriented_and_spaced_scans_onto_one_grid() {
     let recipe = tmp.path().join("recipe.toml");
     std::fs::write(&recipe, RECIPE).unwrap();
     let outdir = tmp.path().join("prepped");
-    let out = SINEW.run(&["prep", s(&raw), "--recipe", s(&recipe), "--out", s(&outdir)]);
+    let out = SINEW.run(["prep", s(&raw), "--recipe", s(&recipe), "--out", s(&outdir)]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     assert!(text(&out.stdout).contains("prepared 2 scans"), "{}", text(&out.stdout));
 
@@ -178,7 +178,7 @@ fn flags_alone_keep_the_field_of_view_and_override_a_recipe() {
     // Orient + resample to a shape, no crop/pad: the field-of-view corners (voxel corners,
     // nibabel.affines.apply_affine) are the same eight world points to 1e-4 mm.
     let o1 = tmp.path().join("o1");
-    let out = SINEW.run(&["prep", s(&b), "--orient", "RAS", "--shape", "72,56,96", "--out", s(&o1), "-q"]);
+    let out = SINEW.run(["prep", s(&b), "--orient", "RAS", "--shape", "72,56,96", "--out", s(&o1), "-q"]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let c = check(&b, &o1.join("scan_b_image.nii.gz"), "image", None);
     let corners = |k: &str| {
@@ -196,7 +196,7 @@ fn flags_alone_keep_the_field_of_view_and_override_a_recipe() {
     let recipe = tmp.path().join("r.toml");
     std::fs::write(&recipe, RECIPE).unwrap();
     let o2 = tmp.path().join("o2");
-    let out = SINEW.run(&[
+    let out = SINEW.run([
         "prep",
         s(&b),
         "--recipe",
@@ -237,19 +237,19 @@ fn bad_inputs_are_refused_before_anything_is_written() {
     std::fs::copy(&a, mixed.join("a_image.nii.gz")).unwrap();
     std::fs::write(mixed.join("z_image.nii.gz"), b"not a nifti file").unwrap();
     let o = tmp.path().join("o_mixed");
-    assert_refused(&SINEW.run(&["prep", s(&mixed), "--out", s(&o), "--orient", "LPS"]), "z_image.nii.gz");
+    assert_refused(&SINEW.run(["prep", s(&mixed), "--out", s(&o), "--orient", "LPS"]), "z_image.nii.gz");
     assert!(!o.exists());
 
     // The output folder holds an input; an output would overwrite an input.
-    assert_refused(&SINEW.run(&["prep", s(&a), "--out", s(&raw)]), "holds this input");
+    assert_refused(&SINEW.run(["prep", s(&a), "--out", s(&raw)]), "holds this input");
 
     // The same scan twice.
-    assert_refused(&SINEW.run(&["prep", s(&raw), s(&a), "--out", s(&o)]), "given twice");
+    assert_refused(&SINEW.run(["prep", s(&raw), s(&a), "--out", s(&o)]), "given twice");
 
     // A label map on another grid than its image.
     let o = tmp.path().join("o_lab");
     let wrong = raw.join("scan_b_labels.nii.gz");
-    assert_refused(&SINEW.run(&["prep", s(&a), "--labels", s(&wrong), "--out", s(&o)]), "scan_b_labels.nii.gz");
+    assert_refused(&SINEW.run(["prep", s(&a), "--labels", s(&wrong), "--out", s(&o)]), "scan_b_labels.nii.gz");
     assert!(!o.exists());
 
     // A label map without its image, by the naming rule.
@@ -257,7 +257,7 @@ fn bad_inputs_are_refused_before_anything_is_written() {
     std::fs::create_dir(&orphan).unwrap();
     std::fs::copy(&a, orphan.join("x_image.nii.gz")).unwrap();
     std::fs::copy(raw.join("scan_a_labels.nii.gz"), orphan.join("y_labels.nii.gz")).unwrap();
-    assert_refused(&SINEW.run(&["prep", s(&orphan), "--out", s(&o)]), "y_labels.nii.gz");
+    assert_refused(&SINEW.run(["prep", s(&orphan), "--out", s(&o)]), "y_labels.nii.gz");
 
     // A step that fails on the second file (no voxel above the threshold after the first
     // succeeded): no partial output — the folder holds nothing afterwards.
@@ -268,12 +268,12 @@ fn bad_inputs_are_refused_before_anything_is_written() {
     let mut cold = sinew_io::read_image(&a).unwrap();
     cold.as_slice_mut().iter_mut().enumerate().for_each(|(n, v)| *v = -1000.0 + (n % 7) as f32);
     sinew_io::write_image(&hot.join("b_image.nii.gz"), &cold).unwrap();
-    let out = SINEW.run(&["prep", s(&hot), "--scale", "zscore", "--body-threshold", "-900", "--out", s(&o)]);
+    let out = SINEW.run(["prep", s(&hot), "--scale", "zscore", "--body-threshold", "-900", "--out", s(&o)]);
     assert_refused(&out, "b_image.nii.gz");
     assert!(text(&out.stderr).contains("body threshold"), "{}", text(&out.stderr));
     assert_eq!(std::fs::read_dir(&o).unwrap().count(), 0, "partial output left behind");
 
     // Bad flags: exit 2 with the value named.
-    assert_refused(&SINEW.run(&["prep", s(&a), "--orient", "RAR", "--out", s(&o)]), "RAR");
-    assert_refused(&SINEW.run(&["prep", s(&a), "--window=5,1", "--out", s(&o)]), "window");
+    assert_refused(&SINEW.run(["prep", s(&a), "--orient", "RAR", "--out", s(&o)]), "RAR");
+    assert_refused(&SINEW.run(["prep", s(&a), "--window=5,1", "--out", s(&o)]), "window");
 }

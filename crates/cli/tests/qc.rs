@@ -47,7 +47,7 @@ fn writes_a_sheet_and_refuses_bad_input() {
     let png = tmp.path().join("qc.png");
     let p = png.to_str().unwrap();
     let base = ["qc", "-f", &fixed, "-m", &moving, "--field", &field];
-    let out = SINEW.run(&[&base[..], &["--fixed-labels", &fl, "--moving-labels", &ml, "-o", p]].concat());
+    let out = SINEW.run([&base[..], &["--fixed-labels", &fl, "--moving-labels", &ml, "-o", p]].concat());
     assert!(out.status.success(), "{}", text(&out.stderr));
     let (w, h) = png_size(&png);
     // Six panels of at least 120 px side by side, three rows: a sheet, not a thumbnail.
@@ -57,8 +57,8 @@ fn writes_a_sheet_and_refuses_bad_input() {
 
     // A chosen point and window, without labels.
     let png2 = tmp.path().join("qc2.png");
-    let out = SINEW
-        .run(&[&base[..], &["--point", "10,20,30", "--window", "-100,200", "-o", png2.to_str().unwrap()]].concat());
+    let out =
+        SINEW.run([&base[..], &["--point", "10,20,30", "--window", "-100,200", "-o", png2.to_str().unwrap()]].concat());
     assert!(out.status.success(), "{}", text(&out.stderr));
     assert!(text(&out.stdout).contains("[10, 20, 30]"));
     // The same grid gives the same width; without labels there is no legend row below.
@@ -73,7 +73,7 @@ fn writes_a_sheet_and_refuses_bad_input() {
         (vec!["--window", "300,-200"], "lo < hi"),
         (vec!["--window", "a,b"], "not a number"),
     ] {
-        let out = SINEW.run(&[&base[..], &extra[..], &["-o", b]].concat());
+        let out = SINEW.run([&base[..], &extra[..], &["-o", b]].concat());
         assert_eq!(out.status.code(), Some(2), "{extra:?}");
         assert!(text(&out.stderr).contains(needle), "{extra:?}: {}", text(&out.stderr));
         assert!(!bad.exists());
@@ -82,11 +82,11 @@ fn writes_a_sheet_and_refuses_bad_input() {
     let other = tmp.path().join("other_field.nii.gz");
     let g = sinew_grid::Grid::axis_aligned([10, 10, 10], [4.0; 3], [0.0; 3]);
     sinew_io::write_field(&other, &Field::zeros(g), sinew_io::FieldUnits::Voxel).unwrap();
-    let out = SINEW.run(&["qc", "-f", &fixed, "-m", &moving, "--field", other.to_str().unwrap(), "-o", b]);
+    let out = SINEW.run(["qc", "-f", &fixed, "-m", &moving, "--field", other.to_str().unwrap(), "-o", b]);
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("fixed grid"), "{}", text(&out.stderr));
     // Never overwrite an input.
-    let out = SINEW.run(&["qc", "-f", &fixed, "-m", &moving, "--field", &field, "-o", &moving]);
+    let out = SINEW.run(["qc", "-f", &fixed, "-m", &moving, "--field", &field, "-o", &moving]);
     assert_eq!(out.status.code(), Some(2));
 }
 

@@ -46,7 +46,7 @@ fn tune_args<'a>(out: &'a Path, extra: &[&'a str]) -> Vec<&'a str> {
 }
 
 fn tune(out: &Path, extra: &[&str]) -> Output {
-    SINEW.run(&tune_args(out, extra))
+    SINEW.run(tune_args(out, extra))
 }
 
 /// trials.csv without the wall-time column (wall times differ between runs).
@@ -149,7 +149,7 @@ fn written_config_round_trips_through_register() {
     let reg = sinew_testkit::tempdir();
     let d = demo();
     let f = |n: &str| d.join(n).to_str().unwrap().to_string();
-    ok(SINEW.run(&[
+    ok(SINEW.run([
         "register",
         "-f",
         &f("subject_00_image.nii.gz"),
@@ -169,7 +169,7 @@ fn written_config_round_trips_through_register() {
     // shortest form).
     assert_eq!(report["params"], rec["params"]);
     // The cohort and demo commands accept it too (parse and validate only: --list stops there).
-    ok(SINEW.run(&[
+    ok(SINEW.run([
         "cohort",
         "--all-pairs",
         p(d),
@@ -273,14 +273,14 @@ fn bad_input_is_one_line_and_exit_2() {
     ] {
         let mut a = vec!["tune", "--all-pairs", p(d), "--out", p(&out)];
         a.extend(args.iter().copied());
-        let o = SINEW.run(&a);
+        let o = SINEW.run(a);
         assert_eq!(o.status.code(), Some(2), "{args:?}");
         assert!(first_line(&o).contains(needle), "{args:?}: {}", first_line(&o));
     }
     // An empty pair list names the file.
     let empty = dir.path().join("pairs.csv");
     std::fs::write(&empty, "fixed,moving\n").unwrap();
-    let o = SINEW.run(&["tune", "--all-pairs", p(d), "--pairs", p(&empty), "--out", p(&out)]);
+    let o = SINEW.run(["tune", "--all-pairs", p(d), "--pairs", p(&empty), "--out", p(&out)]);
     assert_eq!(o.status.code(), Some(2));
     let err = String::from_utf8_lossy(&o.stderr);
     assert_eq!(err.lines().count(), 1, "{err}");
@@ -288,7 +288,7 @@ fn bad_input_is_one_line_and_exit_2() {
     // A single pair cannot be split.
     let one = dir.path().join("one.csv");
     std::fs::write(&one, "fixed,moving\nsubject_00,subject_01\n").unwrap();
-    let o = SINEW.run(&["tune", "--all-pairs", p(d), "--pairs", p(&one), "--out", p(&out)]);
+    let o = SINEW.run(["tune", "--all-pairs", p(d), "--pairs", p(&one), "--out", p(&out)]);
     assert_eq!(o.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&o.stderr).contains("at least 2"));
     // No output folder was made by any of them.
