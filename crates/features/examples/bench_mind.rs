@@ -4,11 +4,10 @@
 
 use sinew_features::{mind_ssc_into, Descriptor, MindParams, MindScratch};
 use sinew_grid::{Grid, Image};
-use sinew_testkit::time_runs;
+use sinew_testkit::{thread_pool_from_args, time_runs};
 
 fn main() {
-    let threads: usize = std::env::args().nth(1).map(|s| s.parse().expect("THREADS must be a number")).unwrap_or(0);
-    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().expect("thread pool");
+    let pool = thread_pool_from_args();
     let shape = [144, 112, 192];
     let grid = Grid::axis_aligned(shape, [2.0; 3], [0.0; 3]);
     // A smooth pattern plus seeded noise, CT-like range.

@@ -43,3 +43,10 @@ pub fn time_runs(runs: usize, mut f: impl FnMut()) -> (f64, Vec<f64>) {
         .collect();
     (median(&mut times.clone()), times)
 }
+
+/// The thread pool of a timing example: as many threads as its first command-line argument
+/// says (`THREADS`; none or 0: rayon's default).
+pub fn thread_pool_from_args() -> rayon::ThreadPool {
+    let threads: usize = std::env::args().nth(1).map(|s| s.parse().expect("THREADS must be a number")).unwrap_or(0);
+    rayon::ThreadPoolBuilder::new().num_threads(threads).build().expect("thread pool")
+}

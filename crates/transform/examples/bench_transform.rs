@@ -4,7 +4,7 @@
 //! `cargo run -p sinew-transform --release --example bench_transform [-- THREADS]`
 
 use sinew_grid::{Border, Field, Grid, Image, LabelMap};
-use sinew_testkit::time_runs;
+use sinew_testkit::{thread_pool_from_args, time_runs};
 use sinew_transform::{jacobian_determinant, jacobian_stats, warp_image_into, warp_labels};
 
 /// The median seconds of 5 runs of `f` after one warm-up.
@@ -13,8 +13,7 @@ fn median_secs(f: impl FnMut()) -> f64 {
 }
 
 fn main() {
-    let threads: usize = std::env::args().nth(1).map(|s| s.parse().expect("THREADS must be a number")).unwrap_or(0);
-    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().expect("thread pool");
+    let pool = thread_pool_from_args();
     let shape = [144, 112, 192];
     let grid = Grid::axis_aligned(shape, [2.0; 3], [0.0; 3]);
     let mut img = Image::filled(grid.clone(), 0.0);
