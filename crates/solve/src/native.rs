@@ -66,6 +66,84 @@ struct Cell {
     t: f32,
 }
 
+/// `p + t·(q − p)` in f32: the one interpolation step of [`NativeField::at`] and of the
+/// row-wise evaluation (the same expression, so the two agree bit for bit).
+#[inline(always)]
+fn lerp(p: f32, q: f32, t: f32) -> f32 {
+    p + t * (q - p)
+}
+
+/// `out[n] = lerp(p[n], q[n], t)` over whole rows.
+#[inline]
+fn lerp_rows(out: &mut [f32], p: &[f32], q: &[f32], t: f32) {
+    for ((o, &a), &b) in out.iter_mut().zip(p).zip(q) {
+        *o = lerp(a, b, t);
+    }
+}
+
+impl Upsampled {
+    /// The working vector `v` (working voxels, trilinear at `m·x`) carried to native voxel
+    /// `x = (i, j, k)`: `w = L·v` in f64 rounded to f32, then `G⁻¹AG·(x + w) − x` when the
+    /// linear map is not the identity.
+    #[inline]
+    fn finish(&self, [i, j, k]: [usize; 3], v: [f32; 3]) -> [f32; 3] {
+        let v = v.map(f64::from);
+        let l = &self.lin;
+        let w = [0, 1, 2].map(|r| (l[r][0] * v[0] + l[r][1] * v[1] + l[r][2] * v[2]) as f32);
+        match &self.post {
+            None => w,
+            // compose_after: G⁻¹AG·(x + w) − x.
+            Some(post) => {
+                let x = [i as f64, j as f64, k as f64];
+                let q = post.apply([x[0] + w[0] as f64, x[1] + w[1] as f64, x[2] + w[2] as f64]);
+                [(q[0] - x[0]) as f32, (q[1] - x[1]) as f32, (q[2] - x[2]) as f32]
+            }
+        }
+    }
+
+    /// Component `d` of the working row `(x, y)` interpolated along `k` at the native
+    /// positions `k0 .. k0 + out.len()` (the innermost step of [`NativeField::at`]).
+    #[inline]
+    fn k_row(&self, d: usize, x: usize, y: usize, cz: &[Cell], k0: usize, out: &mut [f32]) {
+        let shape = self.work.grid.shape();
+        let u = &self.work.component(d)[(x * shape[1] + y) * shape[2]..][..shape[2]];
+        for (o, c) in out.iter_mut().zip(&cz[k0..]) {
+            *o = lerp(u[c.lo], u[c.hi], c.t);
+        }
+    }
+
+    /// Native slab `i` (memory order, `ny·nz` values per component) by rows: each working row
+    /// `(x, y)` used is interpolated along `k` once, then the rows are combined along `j`, then
+    /// `i`, in the order of [`NativeField::at`] (so the values are the same, bit for bit).
+    /// `scratch` is resized as needed.
+    fn fill_slab_rows(&self, i: usize, ny: usize, nz: usize, out: [&mut [f32]; 3], scratch: &mut Vec<f32>) {
+        let [cx, cy, cz] = self.cells.as_ref().expect("separable");
+        let nyw = self.work.grid.shape()[1];
+        let a = cx[i];
+        // Layout of scratch: per component, rows K0[y] (x = a.lo) and K1[y] (x = a.hi), then
+        // two rows of nz for the j-combined values.
+        let per = 2 * nyw * nz + 2 * nz;
+        scratch.resize(3 * per, 0.0);
+        let (ylo, yhi) = (cy[0].lo.min(cy[ny - 1].lo), cy[0].hi.max(cy[ny - 1].hi));
+        for (d, o) in out.into_iter().enumerate() {
+            let s = &mut scratch[d * per..(d + 1) * per];
+            let (k0s, rest) = s.split_at_mut(nyw * nz);
+            let (k1s, rest) = rest.split_at_mut(nyw * nz);
+            let (c0, c1) = rest.split_at_mut(nz);
+            for y in ylo..=yhi {
+                self.k_row(d, a.lo, y, cz, 0, &mut k0s[y * nz..(y + 1) * nz]);
+                self.k_row(d, a.hi, y, cz, 0, &mut k1s[y * nz..(y + 1) * nz]);
+            }
+            for (j, row) in o.chunks_exact_mut(nz).enumerate() {
+                let b = cy[j];
+                lerp_rows(c0, &k0s[b.lo * nz..][..nz], &k0s[b.hi * nz..][..nz], b.t);
+                lerp_rows(c1, &k1s[b.lo * nz..][..nz], &k1s[b.hi * nz..][..nz], b.t);
+                lerp_rows(row, c0, c1, a.t);
+            }
+        }
+    }
+}
+
 /// The cells of native positions `0 .. n` along one axis, at working position
 /// `q = scale·x + offset` on an axis of `len` working voxels, under the border rule of
 /// [`sinew_grid::interp`] for values (the position clamped into the axis); `q` is rounded to
@@ -149,16 +227,7 @@ impl NativeField {
             Kind::Full(f) => f.clone(),
             Kind::Upsampled(_) => {
                 let mut out = Field::zeros(self.grid.clone());
-                let [_, ny, nz] = self.grid.shape();
-                out.par_slabs_mut(|i, [a, b, c]| {
-                    for j in 0..ny {
-                        for k in 0..nz {
-                            let v = self.at(i, j, k);
-                            let n = j * nz + k;
-                            (a[n], b[n], c[n]) = (v[0], v[1], v[2]);
-                        }
-                    }
-                });
+                out.par_slabs_mut(|i, out| self.fill_slab(i, out, &mut Vec::new()));
                 out
             }
         }
@@ -174,7 +243,6 @@ impl NativeField {
                 [f.component(0)[n], f.component(1)[n], f.component(2)[n]]
             }
             Kind::Upsampled(up) => {
-                let x = [i as f64, j as f64, k as f64];
                 // resample_field: the working vectors at m·x, carried to native voxels.
                 let shape = up.work.grid.shape();
                 let v = match &up.cells {
@@ -184,30 +252,20 @@ impl NativeField {
                         let (x0, x1, y0, y1) = (a.lo * sx, a.hi * sx, b.lo * sy, b.hi * sy);
                         [0, 1, 2].map(|d| {
                             let u = up.work.component(d);
-                            let lerp = |p: f32, q: f32, t: f32| p + t * (q - p);
                             let c00 = lerp(u[x0 + y0 + c.lo], u[x0 + y0 + c.hi], c.t);
                             let c01 = lerp(u[x0 + y1 + c.lo], u[x0 + y1 + c.hi], c.t);
                             let c10 = lerp(u[x1 + y0 + c.lo], u[x1 + y0 + c.hi], c.t);
                             let c11 = lerp(u[x1 + y1 + c.lo], u[x1 + y1 + c.hi], c.t);
-                            lerp(lerp(c00, c01, b.t), lerp(c10, c11, b.t), a.t) as f64
+                            lerp(lerp(c00, c01, b.t), lerp(c10, c11, b.t), a.t)
                         })
                     }
                     None => {
-                        let q = up.m.apply(x);
+                        let q = up.m.apply([i as f64, j as f64, k as f64]);
                         let p = [q[0] as f32, q[1] as f32, q[2] as f32];
-                        [0, 1, 2].map(|d| trilinear(up.work.component(d), shape, p, Border::Nearest) as f64)
+                        [0, 1, 2].map(|d| trilinear(up.work.component(d), shape, p, Border::Nearest))
                     }
                 };
-                let l = &up.lin;
-                let w = [0, 1, 2].map(|r| (l[r][0] * v[0] + l[r][1] * v[1] + l[r][2] * v[2]) as f32);
-                match &up.post {
-                    None => w,
-                    // compose_after: G⁻¹AG·(x + w) − x.
-                    Some(post) => {
-                        let q = post.apply([x[0] + w[0] as f64, x[1] + w[1] as f64, x[2] + w[2] as f64]);
-                        [(q[0] - x[0]) as f32, (q[1] - x[1]) as f32, (q[2] - x[2]) as f32]
-                    }
-                }
+                up.finish([i, j, k], v)
             }
         }
     }
@@ -225,12 +283,42 @@ impl NativeField {
         let [a, b, c] = out;
         let views = [a, b, c].map(|o| ArrayViewMut3::from_shape((nk, ny, nx), o).expect("whole planes"));
         let [mut va, mut vb, mut vc] = views;
-        va.axis_iter_mut(Axis(1))
-            .into_par_iter()
-            .zip(vb.axis_iter_mut(Axis(1)))
-            .zip(vc.axis_iter_mut(Axis(1)))
-            .enumerate()
-            .for_each(|(j, ((mut ra, mut rb), mut rc))| {
+        let rows = va.axis_iter_mut(Axis(1)).into_par_iter().zip(vb.axis_iter_mut(Axis(1))).zip(vc.axis_iter_mut(Axis(1)));
+        match &self.kind {
+            Kind::Upsampled(up @ Upsampled { cells: Some([cx, cy, cz]), .. }) => {
+                // By rows: for row j, each working row (x, y) used is interpolated along k
+                // once, combined along j into J[x], then along i (the order of `at`).
+                let nxw = up.work.grid.shape()[0];
+                let (xlo, xhi) = (cx[0].lo.min(cx[nx - 1].lo), cx[0].hi.max(cx[nx - 1].hi));
+                rows.enumerate().for_each_init(
+                    || vec![0.0f32; (3 * nxw + 2) * nk],
+                    |scratch, (j, ((mut ra, mut rb), mut rc))| {
+                        let b = cy[j];
+                        let (js, rest) = scratch.split_at_mut(3 * nxw * nk);
+                        let (t0, t1) = rest.split_at_mut(nk);
+                        for d in 0..3 {
+                            for x in xlo..=xhi {
+                                up.k_row(d, x, b.lo, cz, k0, t0);
+                                up.k_row(d, x, b.hi, cz, k0, t1);
+                                lerp_rows(&mut js[(d * nxw + x) * nk..][..nk], t0, t1, b.t);
+                            }
+                        }
+                        let jrow = |d: usize, x: usize| &js[(d * nxw + x) * nk..][..nk];
+                        for i in 0..nx {
+                            let a = cx[i];
+                            let (p, q) = ([0, 1, 2].map(|d| jrow(d, a.lo)), [0, 1, 2].map(|d| jrow(d, a.hi)));
+                            for kk in 0..nk {
+                                let v = [0, 1, 2].map(|d| lerp(p[d][kk], q[d][kk], a.t));
+                                let w = up.finish([i, j, k0 + kk], v);
+                                ra[[kk, i]] = w[0];
+                                rb[[kk, i]] = w[1];
+                                rc[[kk, i]] = w[2];
+                            }
+                        }
+                    },
+                );
+            }
+            _ => rows.enumerate().for_each(|(j, ((mut ra, mut rb), mut rc))| {
                 for i in 0..nx {
                     for kk in 0..nk {
                         let v = self.at(i, j, k0 + kk);
@@ -239,25 +327,40 @@ impl NativeField {
                         rc[[kk, i]] = v[2];
                     }
                 }
-            });
+            }),
+        }
     }
 
-    /// Slab `i` (memory order, `ny·nz` values per component) into `out`.
-    fn fill_slab(&self, i: usize, out: [&mut [f32]; 3]) {
+    /// Slab `i` (memory order, `ny·nz` values per component) into `out`; `scratch` is working
+    /// space, resized as needed.
+    fn fill_slab(&self, i: usize, out: [&mut [f32]; 3], scratch: &mut Vec<f32>) {
         let [_, ny, nz] = self.grid.shape();
         let [a, b, c] = out;
-        if let Kind::Full(f) = &self.kind {
-            let r = i * ny * nz..(i + 1) * ny * nz;
-            a.copy_from_slice(&f.component(0)[r.clone()]);
-            b.copy_from_slice(&f.component(1)[r.clone()]);
-            c.copy_from_slice(&f.component(2)[r]);
-            return;
-        }
-        for j in 0..ny {
-            for k in 0..nz {
-                let v = self.at(i, j, k);
-                let n = j * nz + k;
-                (a[n], b[n], c[n]) = (v[0], v[1], v[2]);
+        match &self.kind {
+            Kind::Full(f) => {
+                let r = i * ny * nz..(i + 1) * ny * nz;
+                a.copy_from_slice(&f.component(0)[r.clone()]);
+                b.copy_from_slice(&f.component(1)[r.clone()]);
+                c.copy_from_slice(&f.component(2)[r]);
+            }
+            Kind::Upsampled(up) if up.cells.is_some() => {
+                up.fill_slab_rows(i, ny, nz, [&mut *a, &mut *b, &mut *c], scratch);
+                for j in 0..ny {
+                    for k in 0..nz {
+                        let n = j * nz + k;
+                        let w = up.finish([i, j, k], [a[n], b[n], c[n]]);
+                        (a[n], b[n], c[n]) = (w[0], w[1], w[2]);
+                    }
+                }
+            }
+            Kind::Upsampled(_) => {
+                for j in 0..ny {
+                    for k in 0..nz {
+                        let v = self.at(i, j, k);
+                        let n = j * nz + k;
+                        (a[n], b[n], c[n]) = (v[0], v[1], v[2]);
+                    }
+                }
             }
         }
     }
@@ -299,8 +402,8 @@ pub fn native_outputs(field: &NativeField, moving: &Image, pad: f32, labels: Opt
         None => (0..w_chunks.len()).map(|_| None).collect(),
     };
     w_chunks.into_par_iter().zip(j_chunks).zip(l_chunks).enumerate().for_each_init(
-        || vec![0.0f32; 3 * (CHUNK + 2) * plane],
-        |scratch, (chunk, ((wc, jc), mut lc))| {
+        || (vec![0.0f32; 3 * (CHUNK + 2) * plane], Vec::new()),
+        |(scratch, rows), (chunk, ((wc, jc), mut lc))| {
             let i0 = chunk * CHUNK;
             let i1 = (i0 + CHUNK).min(nx);
             // Slabs lo .. hi of the field: the chunk and one either side inside the grid.
@@ -311,7 +414,7 @@ pub fn native_outputs(field: &NativeField, moving: &Image, pad: f32, labels: Opt
             let sc = &mut rest[..n];
             for i in lo..hi {
                 let r = (i - lo) * plane..(i - lo + 1) * plane;
-                field.fill_slab(i, [&mut sa[r.clone()], &mut sb[r.clone()], &mut sc[r]]);
+                field.fill_slab(i, [&mut sa[r.clone()], &mut sb[r.clone()], &mut sc[r]], rows);
             }
             let u = [&*sa, &*sb, &*sc];
             let at = |i: usize, j: usize, k: usize| ((i - lo) * ny + j) * nz + k;
@@ -368,7 +471,7 @@ mod tests {
             Affine::from_parts([[0.9, 0.1, 0.0], [-0.1, 0.9, 0.0], [0.0, 0.0, 2.5]], [-5.0, 3.0, 1.0]),
         )
         .unwrap();
-        let work = native.with_shape([6, 5, 9]).unwrap();
+        let work = native.with_shape([6, 5, 4]).unwrap();
         let mut v = Field::zeros(work.clone());
         for (n, x) in v.data.iter_mut().enumerate() {
             *x = ((n as f32) * 0.37).sin() * 0.8;
@@ -396,6 +499,16 @@ mod tests {
         assert!(diff < 1e-5, "largest difference {diff} voxels");
         let whole = nf.to_field();
         let [nx, ny, nz] = nf.grid().shape();
+        // The row-wise evaluation (slabs for to_field, planes below) interpolates in the order
+        // of the per-voxel one, so they agree bit for bit.
+        for i in 0..nx {
+            for j in 0..ny {
+                for k in 0..nz {
+                    let n = (i * ny + j) * nz + k;
+                    assert_eq!(nf.at(i, j, k), [0, 1, 2].map(|d| whole.component(d)[n]), "({i}, {j}, {k})");
+                }
+            }
+        }
         let (k0, nk) = (3, 4);
         let mut out = [vec![0.0; nk * nx * ny], vec![0.0; nk * nx * ny], vec![0.0; nk * nx * ny]];
         let [a, b, c] = &mut out;
@@ -435,7 +548,7 @@ mod tests {
         let a = nf.grid.affine().compose(&up.post.unwrap().compose(nf.grid.inverse_affine()));
         let g = w.grid.affine();
         let [_, wy, wz] = w.grid.shape();
-        let (i, j, k) = (2usize, 3usize, 4usize);
+        let (i, j, k) = (2usize, 3usize, 2usize);
         let n = (i * wy + j) * wz + k;
         let y = [i as f64, j as f64, k as f64];
         let v = [0, 1, 2].map(|d| up.work.component(d)[n] as f64);
