@@ -283,7 +283,8 @@ impl NativeField {
         let [a, b, c] = out;
         let views = [a, b, c].map(|o| ArrayViewMut3::from_shape((nk, ny, nx), o).expect("whole planes"));
         let [mut va, mut vb, mut vc] = views;
-        let rows = va.axis_iter_mut(Axis(1)).into_par_iter().zip(vb.axis_iter_mut(Axis(1))).zip(vc.axis_iter_mut(Axis(1)));
+        let rows =
+            va.axis_iter_mut(Axis(1)).into_par_iter().zip(vb.axis_iter_mut(Axis(1))).zip(vc.axis_iter_mut(Axis(1)));
         match &self.kind {
             Kind::Upsampled(up @ Upsampled { cells: Some([cx, cy, cz]), .. }) => {
                 // By rows: for row j, each working row (x, y) used is interpolated along k
