@@ -116,6 +116,8 @@ pub fn register(
     observer: &mut dyn FnMut(Progress),
 ) -> Result<Registration, SolveError> {
     params.validate()?;
+    // Coarse scans run fewer levels (see `RegParams::levels_for_mm`).
+    let params = &params.for_spacing(fixed.grid.spacing());
     fixed.grid.ensure_same(&moving.grid)?;
     ensure_finite(fixed, moving)?;
     if let Some(m) = mask {

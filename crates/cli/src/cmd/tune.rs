@@ -113,7 +113,7 @@ const TUNE_HELP: &str = "Examples:
 
 Search: compass search on a log grid (\"Optimization by Direct Search: New Perspectives on
 Some Classical and Modern Methods\", SIAM Review 2003) over lambda, fold_weight,
-mind_dilation, a factor on every level's step size and a factor on every level's
+curvature, mind_dilation, a factor on every level's step size and a factor on every level's
 iterations, starting from --preset/--config. Each round tries one grid step down and up in
 each parameter from the best setting so far; without a gain the steps are halved; it ends
 when the finest steps bring nothing or --trials are spent. Invalid parameters are never tried.

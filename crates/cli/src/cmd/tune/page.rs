@@ -18,6 +18,7 @@ struct CsvRow {
     round: usize,
     lambda: f32,
     fold_weight: f32,
+    curvature: f32,
     mind_dilation: usize,
     step_scale: Option<f64>,
     iter_scale: Option<f64>,
@@ -56,6 +57,7 @@ pub fn write_trials_csv(path: &Path, evals: &[Evaluation], budget: Budget) -> an
             round: e.round.unwrap_or(0),
             lambda: e.params.lambda,
             fold_weight: e.params.fold_weight,
+            curvature: e.params.curvature,
             mind_dilation: e.params.mind_dilation,
             step_scale: e.values.get("step_scale").copied(),
             iter_scale: e.values.get("iter_scale").copied(),
@@ -292,18 +294,19 @@ pub fn html(p: &PageInput) -> String {
     let _ = writeln!(
         h,
         "<h2>Trials</h2>\n<p class=\"muted\">Means over the tuning pairs; seconds = registration wall time per pair. Also in trials.csv.</p>\n\
-         <table class=\"trials\">\n<tr><th>trial</th><th>round</th><th>λ</th><th>fold weight</th><th>MIND dilation</th><th>step ×</th>\
+         <table class=\"trials\">\n<tr><th>trial</th><th>round</th><th>λ</th><th>fold weight</th><th>curvature (mm²)</th><th>MIND dilation</th><th>step ×</th>\
          <th>iterations ×</th><th>mean Dice</th><th>HD95 (mm)</th><th>folding (%)</th><th>SDlogJ</th><th>s per pair</th><th class=\"t\">budget</th><th class=\"t\">front</th></tr>"
     );
     for (i, e) in p.evals.iter().enumerate() {
         let o = &e.outcome;
         let _ = writeln!(
             h,
-            "<tr{}><td>{i}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td>{}<td class=\"t\">{}</td><td class=\"t\">{}</td></tr>",
+            "<tr{}><td>{i}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td>{}<td class=\"t\">{}</td><td class=\"t\">{}</td></tr>",
             if i == p.best { " class=\"best\"" } else { "" },
             e.round.unwrap_or(0),
             e.params.lambda,
             e.params.fold_weight,
+            e.params.curvature,
             e.params.mind_dilation,
             opt(e.values.get("step_scale").copied(), 3),
             opt(e.values.get("iter_scale").copied(), 3),

@@ -19,6 +19,8 @@
 //!   0 followed by 0.05·2^(k/2);
 //! - `fold_weight`: μ on the same kind of grid around μ_base (20 when μ_base = 0, with 0 first);
 //!   not searched in the diffeomorphic mode (its map cannot fold);
+//! - `curvature`: κ (mm²) on the same kind of grid around κ_base (1 when κ_base = 0, with 0
+//!   first); not searched in the diffeomorphic mode (which runs without it);
 //! - `mind_dilation`: 1, 2, 3, 4 (MIND-SSC only);
 //! - `step_scale`: every level's Adam step size times 2^(k/2), k = −4…4;
 //! - `iter_scale`: every level's iteration count times 2^(k/2), k = −4…2 (rounded, at least 1).
@@ -81,6 +83,7 @@ pub fn space(base: &RegParams) -> Vec<Dim> {
     let mut dims = vec![weight_dim("lambda", base.lambda, 0.05)];
     if !base.diffeomorphic {
         dims.push(weight_dim("fold_weight", base.fold_weight, 20.0));
+        dims.push(weight_dim("curvature", base.curvature, 1.0));
     }
     if base.similarity == Similarity::MindSsc {
         let top = base.mind_dilation.max(4);
@@ -104,6 +107,7 @@ pub fn params_at(base: &RegParams, dims: &[Dim], point: &[usize]) -> RegParams {
         match d.name {
             "lambda" => p.lambda = v as f32,
             "fold_weight" => p.fold_weight = v as f32,
+            "curvature" => p.curvature = v as f32,
             "mind_dilation" => p.mind_dilation = v as usize,
             "step_scale" => p.step_size = base.step_size.iter().map(|s| (*s as f64 * v) as f32).collect(),
             "iter_scale" => {
