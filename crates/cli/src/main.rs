@@ -67,12 +67,6 @@ fn main() -> ExitCode {
     }
 }
 
-/// Runs a command line given as words (the first is the program name): lets one command
-/// run others (the demo runs `cohort` and `report`) exactly as a user would.
-pub(crate) fn run_args(words: &[&str]) -> anyhow::Result<()> {
-    dispatch(Cli::try_parse_from(words)?)
-}
-
 fn dispatch(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Info(a) => cmd::info::run(a),
@@ -133,13 +127,13 @@ mod tests {
             // Beyond the syntax: the registration parameters the example asks for must be
             // valid (a per-level list must match the level count; config files are not read).
             match cli.command {
-                super::Command::Register(a) if a.config.is_none() => {
-                    a.params().unwrap_or_else(|e| panic!("{what}: {e:#}"));
+                super::Command::Register(a) if a.params.config.is_none() => {
+                    a.params.params().unwrap_or_else(|e| panic!("{what}: {e:#}"));
                 }
-                super::Command::Cohort(a) if a.config.is_none() && a.action.is_none() => {
+                super::Command::Cohort(a) if a.params.config.is_none() && a.action.is_none() => {
                     crate::cmd::cohort::register_params(&a).unwrap_or_else(|e| panic!("{what}: {e:#}"));
                 }
-                super::Command::Tune(a) if a.config.is_none() => {
+                super::Command::Tune(a) if a.params.config.is_none() => {
                     crate::cmd::tune::base_params(&a).unwrap_or_else(|e| panic!("{what}: {e:#}"));
                 }
                 _ => {}

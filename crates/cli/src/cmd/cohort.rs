@@ -12,8 +12,6 @@
 //! `score.json` parses; anything else is redone (every file is written atomically, so a
 //! killed run leaves only complete files and stray temporaries, which are removed).
 
-pub mod manifest;
-mod table;
 
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicUsize, Ordering};
@@ -21,14 +19,16 @@ use std::sync::Mutex;
 
 use anyhow::{bail, Context};
 use clap::{Args, Subcommand};
-use serde::{Deserialize, Serialize};
 
-pub use manifest::{all_pairs, Pair, Shard, Subject};
-pub use table::Row;
+pub use sinew_cohort::{all_pairs, manifest, table, Pair, Shard, Subject};
+use sinew_cohort::files::{
+    collect_rows, complete_report, pair_name, read_record, read_runtimes, remove_stray_temporaries, PairRecord,
+};
 
 use crate::cmd::common;
-use crate::cmd::register::{RegisterArgs, UnitsArg};
-use crate::cmd::score::{self, FieldFormat, PairFiles, PairResult};
+use crate::cmd::register::{ParamArgs, PresetArgs, RegisterArgs, UnitsArg};
+use crate::cmd::score::FieldFormat;
+use sinew_cohort::{FieldFormat as Format, PairFiles};
 use crate::ui;
 
 /// Arguments of `sinew cohort`.
@@ -53,16 +53,9 @@ pub struct CohortArgs {
     /// Output folder (created if needed; rerunning into it resumes).
     #[arg(long, short = 'o', value_name = "DIR", required = true)]
     pub out: Option<PathBuf>,
-    /// Parameter preset for the registrations: fast, default or accurate.
-    #[arg(long, default_value = "default", value_parser = clap::builder::PossibleValuesParser::new(sinew_solve::PRESETS))]
-    pub preset: String,
-    /// A TOML file of parameters applied over the preset (as for `sinew register`).
-    #[arg(long, value_name = "TOML")]
-    pub config: Option<PathBuf>,
-    /// Iterations per optimised level, coarsest first, one number per level (e.g. `40,30,20,10`
-    /// for the 4 levels of the presets).
-    #[arg(long, value_delimiter = ',')]
-    pub iterations: Option<Vec<usize>>,
+    /// Preset, config file and iterations of the registrations.
+    #[command(flatten)]
+    pub params: PresetArgs,
     /// Diffeomorphic registration (scaling and squaring of a velocity field).
     #[arg(long)]
     pub diffeomorphic: bool,
@@ -170,7 +163,7 @@ pub fn run(args: CohortArgs) -> anyhow::Result<()> {
         (None, Some(d)) => (manifest::scan_folder(d)?, None, d.clone()),
         (None, None) => bail!("give --manifest FILE or --all-pairs DIR"),
     };
-    let names = score::label_names(&names_dir)?;
+    let names = sinew_cohort::label_names(&names_dir)?;
     let listed = match (&args.pairs, listed) {
         (Some(p), Some((_, m))) => {
             bail!("{}: lists [[pair]] tables and --pairs {} was given too; keep one", m.display(), p.display())
@@ -281,19 +274,6 @@ enum Outcome {
     Skipped,
 }
 
-/// The scores of one pair and method as stored in `score.json` / `methods/NAME/<pair>.json`.
-#[derive(Serialize, Deserialize)]
-struct PairRecord {
-    method: String,
-    pair: usize,
-    fixed: String,
-    moving: String,
-    /// Registration wall time, s (baseline only).
-    runtime_s: Option<f64>,
-    #[serde(flatten)]
-    result: PairResult,
-}
-
 struct Ctx<'a> {
     args: &'a CohortArgs,
     out: &'a Path,
@@ -308,7 +288,7 @@ pub(crate) fn register_params(args: &CohortArgs) -> anyhow::Result<Option<sinew_
     if args.method.is_some() {
         return Ok(None);
     }
-    register_args(args, &Subject::placeholder(), &Subject::placeholder(), Path::new(".")).params().map(Some)
+    ParamArgs::base(&args.params, args.diffeomorphic).params().map(Some)
 }
 
 fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> RegisterArgs {
@@ -322,18 +302,7 @@ fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> Reg
         field_units: UnitsArg::Mm,
         npy: false,
         out_format: crate::cmd::register::OutFormat::NiiGz,
-        preset: args.preset.clone(),
-        config: args.config.clone(),
-        lambda: None,
-        iterations: args.iterations.clone(),
-        levels: None,
-        finest_level: None,
-        optimiser: None,
-        similarity: None,
-        diffeomorphic: args.diffeomorphic,
-        model: None,
-        grid_spacing: None,
-        affine: None,
+        params: ParamArgs::base(&args.params, args.diffeomorphic),
         scan: args.scan.clone(),
         threads: None,
         no_qc: false,
@@ -354,47 +323,6 @@ fn names_file(args: &CohortArgs) -> Option<PathBuf> {
     Some(dir.join("labels.json")).filter(|p| p.is_file())
 }
 
-impl Subject {
-    fn placeholder() -> Subject {
-        Subject { id: String::new(), image: PathBuf::new(), labels: PathBuf::new(), mask: None, landmarks: None }
-    }
-}
-
-fn pair_name(f: &Subject, m: &Subject) -> String {
-    format!("{}__{}", f.id, m.id)
-}
-
-fn read_record(path: &Path, pair: Pair, f: &Subject, m: &Subject) -> Option<PairRecord> {
-    let text = std::fs::read_to_string(path).ok()?;
-    let r: PairRecord = serde_json::from_str(&text).ok()?;
-    (r.pair == pair.index && r.fixed == f.id && r.moving == m.id).then_some(r)
-}
-
-/// The wall time recorded in a complete `report.json`, or `None` when the report is missing,
-/// does not parse, or lists an output that is not there.
-fn complete_report(dir: &Path) -> Option<f64> {
-    let text = std::fs::read_to_string(dir.join("report.json")).ok()?;
-    let v: serde_json::Value = serde_json::from_str(&text).ok()?;
-    let outputs = v.get("outputs")?.as_array()?;
-    let all_there = outputs
-        .iter()
-        .all(|o| o.as_str().and_then(|s| Path::new(s).file_name()).is_some_and(|name| dir.join(name).is_file()));
-    (all_there && dir.join("field.nii.gz").is_file()).then(|| v["timings"]["register_s"].as_f64()).flatten()
-}
-
-/// Removes temporaries left by an interrupted atomic write (`.<name>.tmp-<pid>-<n>`).
-fn remove_stray_temporaries(dir: &Path) {
-    if let Ok(entries) = std::fs::read_dir(dir) {
-        for e in entries.flatten() {
-            let name = e.file_name();
-            let name = name.to_string_lossy();
-            if name.starts_with('.') && name.contains(".tmp-") {
-                let _ = std::fs::remove_file(e.path());
-            }
-        }
-    }
-}
-
 impl Ctx<'_> {
     fn do_pair(&self, pair: Pair) -> anyhow::Result<Outcome> {
         let (f, m) = (&self.subjects[pair.fixed], &self.subjects[pair.moving]);
@@ -413,14 +341,14 @@ impl Ctx<'_> {
                 let record_path = dir.join(format!("{name}.json"));
                 let runtime = self.runtimes.get(&(f.id.clone(), m.id.clone())).copied();
                 if let Some(r) = read_record(&record_path, pair, f, m) {
-                    if r.result.field.as_ref().map(|n| &n.sha256) == Some(&common::sha256_file(&field)?)
+                    if r.result.field.as_ref().map(|n| &n.sha256) == Some(&sinew_cohort::sha256_file(&field)?)
                         && r.runtime_s == runtime
                     {
                         return Ok(Outcome::Skipped);
                     }
                 }
                 remove_stray_temporaries(&dir);
-                self.score_into(pair, method, &field, &self.args.field_format, runtime, &record_path)?;
+                self.score_into(pair, method, &field, &self.args.field_format.format(), runtime, &record_path)?;
                 Ok(Outcome::Done)
             }
             _ => {
@@ -443,7 +371,7 @@ impl Ctx<'_> {
                     return Ok(outcome);
                 }
                 let field = dir.join("field.nii.gz");
-                self.score_into(pair, table::BASELINE, &field, &FieldFormat::default(), Some(runtime), &score_path)?;
+                self.score_into(pair, table::BASELINE, &field, &Format::default(), Some(runtime), &score_path)?;
                 Ok(Outcome::Done)
             }
         }
@@ -455,7 +383,7 @@ impl Ctx<'_> {
         pair: Pair,
         method: &str,
         field: &Path,
-        fmt: &FieldFormat,
+        fmt: &Format,
         runtime_s: Option<f64>,
         record_path: &Path,
     ) -> anyhow::Result<()> {
@@ -467,7 +395,7 @@ impl Ctx<'_> {
             warped_labels: None,
             landmarks: f.landmarks.as_deref().zip(m.landmarks.as_deref()),
         };
-        let result = score::score_files(&files, fmt)?;
+        let result = sinew_cohort::score_files(&files, fmt)?;
         let rec = PairRecord {
             method: method.into(),
             pair: pair.index,
@@ -476,99 +404,8 @@ impl Ctx<'_> {
             runtime_s,
             result,
         };
-        common::write_json(record_path, &rec)
+        Ok(sinew_cohort::write_json(record_path, &rec)?)
     }
-}
-
-/// Reads `--runtimes`: CSV `fixed,moving,runtime_s` (seconds, finite, ≥ 0) of known subjects.
-fn read_runtimes(
-    path: &Path,
-    subjects: &[Subject],
-) -> anyhow::Result<std::collections::BTreeMap<(String, String), f64>> {
-    let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
-    let (cols, records) = manifest::read_table(&text, path)?;
-    if cols != ["fixed", "moving", "runtime_s"] {
-        bail!("{}: the header must be fixed,moving,runtime_s, found {}", path.display(), cols.join(","));
-    }
-    let mut out = std::collections::BTreeMap::new();
-    for (line, c) in records {
-        for id in [&c[0], &c[1]] {
-            if !subjects.iter().any(|s| &s.id == id) {
-                bail!("{}:{line}: subject {id:?} is not in the cohort", path.display());
-            }
-        }
-        let t: f64 =
-            c[2].parse().ok().filter(|t: &f64| t.is_finite() && *t >= 0.0).with_context(|| {
-                format!("{}:{line}: runtime {:?} is not a number of seconds ≥ 0", path.display(), c[2])
-            })?;
-        if out.insert((c[0].clone(), c[1].clone()), t).is_some() {
-            bail!("{}:{line}: pair {:?} → {:?} is listed twice", path.display(), c[0], c[1]);
-        }
-    }
-    Ok(out)
-}
-
-/// Table rows of every method with scores in `out` for `pairs`.
-fn collect_rows(
-    out: &Path,
-    subjects: &[Subject],
-    pairs: &[Pair],
-    names: &std::collections::BTreeMap<u16, String>,
-) -> anyhow::Result<Vec<Row>> {
-    let mut sources: Vec<PathBuf> = Vec::new();
-    let methods_dir = out.join("methods");
-    if methods_dir.is_dir() {
-        for e in std::fs::read_dir(&methods_dir).with_context(|| format!("{}: cannot list", methods_dir.display()))? {
-            let e = e.with_context(|| format!("{}: cannot list", methods_dir.display()))?;
-            if e.path().is_dir() {
-                sources.push(e.path());
-            }
-        }
-    }
-    sources.sort();
-    let mut rows = Vec::new();
-    for &pair in pairs {
-        let (f, m) = (&subjects[pair.fixed], &subjects[pair.moving]);
-        let name = pair_name(f, m);
-        let mut records = vec![out.join("pairs").join(&name).join("score.json")];
-        records.extend(sources.iter().map(|d| d.join(format!("{name}.json"))));
-        for path in records {
-            if let Some(r) = read_record(&path, pair, f, m) {
-                rows.extend(rows_of(&r, names));
-            }
-        }
-    }
-    Ok(rows)
-}
-
-fn rows_of(r: &PairRecord, names: &std::collections::BTreeMap<u16, String>) -> Vec<Row> {
-    let j = r.result.score.jacobian.as_ref();
-    r.result
-        .score
-        .labels
-        .iter()
-        .map(|l| {
-            let s = l.surface.as_ref();
-            Row {
-                method: r.method.clone(),
-                pair: r.pair,
-                fixed: r.fixed.clone(),
-                moving: r.moving.clone(),
-                label: l.label,
-                name: names.get(&l.label).cloned().unwrap_or_default(),
-                dice_before: l.dice_before,
-                dice: l.dice,
-                hd95_mm: s.map(|s| s.hd95_mm),
-                hd_mm: s.map(|s| s.hd_mm),
-                assd_mm: s.map(|s| s.assd_mm),
-                folding: j.map(|j| j.folding_fraction),
-                sdlogj: j.and_then(|j| j.sd_log_j),
-                jac_min: j.and_then(|j| j.min),
-                landmark_mm: r.result.landmarks.as_ref().map(|l| l.mean_mm),
-                runtime_s: r.runtime_s,
-            }
-        })
-        .collect()
 }
 
 /// `sinew cohort merge`.

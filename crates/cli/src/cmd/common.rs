@@ -1,17 +1,13 @@
 //! What several subcommands share: loading and checking inputs, output folders, JSON, Dice.
 
 use std::collections::BTreeMap;
-use std::io::Read;
 use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 use serde::Serialize;
-use sha2::{Digest, Sha256};
 use sinew_grid::{resample, Image, LabelMap};
 
-/// The caution every report carries.
-pub const CAUTION: &str = "Research use only; not for diagnosis or treatment. Check every registration visually \
-(a qualified person) before using it; local regulations and clinical practice govern any clinical use.";
+pub use sinew_cohort::{sha256_file, write_json, CAUTION};
 
 /// The inputs of one pair, read and checked.
 pub struct Inputs {
@@ -222,35 +218,12 @@ fn read_labels_on(path: &Path, img: &Image, img_path: &Path) -> anyhow::Result<L
     Ok(l)
 }
 
-/// SHA-256 of a file, hex.
-pub fn sha256_file(path: &Path) -> anyhow::Result<String> {
-    let mut f = std::fs::File::open(path).with_context(|| format!("{}: cannot open", path.display()))?;
-    let mut h = Sha256::new();
-    let mut buf = vec![0u8; 1 << 16];
-    loop {
-        let n = f.read(&mut buf).with_context(|| format!("{}: cannot read", path.display()))?;
-        if n == 0 {
-            break;
-        }
-        h.update(&buf[..n]);
-    }
-    Ok(h.finalize().iter().map(|b| format!("{b:02x}")).collect())
-}
-
 /// Creates the output folder and refuses outputs that would overwrite an input.
 pub fn prepare_out_dir(dir: &Path, outputs: &[PathBuf], inputs: &[PathBuf]) -> anyhow::Result<()> {
     std::fs::create_dir_all(dir).with_context(|| format!("{}: cannot create the output folder", dir.display()))?;
     for o in outputs {
         sinew_io::atomic::ensure_not_input(o, inputs)?;
     }
-    Ok(())
-}
-
-/// Writes pretty JSON atomically.
-pub fn write_json<T: Serialize>(path: &Path, value: &T) -> anyhow::Result<()> {
-    let mut bytes = serde_json::to_vec_pretty(value).context("serialising JSON")?;
-    bytes.push(b'\n');
-    sinew_io::atomic::write_bytes_atomic(path, &bytes)?;
     Ok(())
 }
 

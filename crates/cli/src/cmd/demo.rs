@@ -18,6 +18,10 @@ use anyhow::{bail, Context, Result};
 use serde::{Deserialize, Serialize};
 use sinew_phantom::{generate, PhantomParams, LABELS};
 
+use crate::cmd::cohort::CohortArgs;
+use crate::cmd::register::{PresetArgs, ScanArgs};
+use crate::cmd::report::ReportArgs;
+use crate::cmd::score::FieldFormat;
 use crate::ui;
 
 /// Arguments of `sinew demo`.
@@ -63,8 +67,8 @@ pub struct DemoArgs {
 
     /// Grey window of the pairs' QC sheets: `lo,hi` in HU, or `auto` (as in `sinew register
     /// --qc-window`).
-    #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = window_text)]
-    pub qc_window: String,
+    #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = crate::cmd::qc::window_arg)]
+    pub qc_window: sinew_qc::Window,
 
     /// No progress bar and no per-subject lines.
     #[arg(long, short)]
@@ -98,11 +102,6 @@ struct CohortInfo {
 
 fn one() -> f64 {
     1.0
-}
-
-/// `--qc-window`: checked here, passed on to `sinew cohort` as written.
-fn window_text(s: &str) -> Result<String, String> {
-    crate::cmd::qc::parse_window(s).map(|_| s.to_string())
 }
 
 /// `--variation`: a finite number in [0, 10].
@@ -145,21 +144,34 @@ pub fn run(args: DemoArgs) -> Result<()> {
         return Ok(());
     }
     let results = args.out.join("results");
-    let dir = args.out.display().to_string();
     let res = results.display().to_string();
-    let report = results.join("report.html").display().to_string();
-    let config = args.config.as_ref().map(|c| c.display().to_string());
-    let mut cohort = vec!["sinew", "cohort", "--all-pairs", &dir, "--out", &res, "--preset", &args.preset];
-    if let Some(c) = &config {
-        cohort.extend(["--config", c.as_str()]);
-    }
-    let qc_window = format!("--qc-window={}", args.qc_window);
-    cohort.push(&qc_window);
-    if args.quiet {
-        cohort.push("--quiet");
-    }
-    crate::run_args(&cohort)?;
-    crate::run_args(&["sinew", "report", "--cohort", &res, "--out", &report])?;
+    let report = results.join("report.html");
+    // `sinew cohort --all-pairs OUT --out OUT/results` with the demo's parameters, then
+    // `sinew report`, called directly.
+    let cohort = CohortArgs {
+        action: None,
+        manifest: None,
+        all_pairs: Some(args.out.clone()),
+        pairs: None,
+        out: Some(results.clone()),
+        params: PresetArgs { preset: args.preset.clone(), config: args.config.clone(), iterations: None },
+        diffeomorphic: false,
+        shard: None,
+        jobs: 1,
+        threads: None,
+        method: None,
+        fields: None,
+        runtimes: None,
+        field_format: FieldFormat::default(),
+        robust_percentile: sinew_score::ROBUST_PERCENTILE,
+        scan: ScanArgs::default(),
+        qc_window: args.qc_window,
+        list: false,
+        quiet: args.quiet,
+    };
+    crate::cmd::cohort::run(cohort)?;
+    crate::cmd::report::run(ReportArgs { cohort: results.clone(), out: report.clone() })?;
+    let report = report.display().to_string();
     if !args.quiet {
         // The per-label summary table, as written to summary.md.
         if let Ok(md) = std::fs::read_to_string(results.join("summary.md")) {

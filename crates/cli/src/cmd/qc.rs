@@ -138,7 +138,7 @@ pub fn run(args: QcArgs) -> anyhow::Result<()> {
     let warped = sinew_transform::warp_image_from(&inputs.moving, &field, Border::Constant(pad));
     let warped_labels = inputs.moving_labels.as_ref().map(|l| sinew_transform::warp_labels_from(l, &field));
     let jacdet = sinew_transform::jacobian_determinant(&field);
-    let names = crate::cmd::score::label_names_for(args.label_names.as_deref(), args.fixed_labels.as_deref())?;
+    let names = sinew_cohort::label_names_for(args.label_names.as_deref(), args.fixed_labels.as_deref())?;
     let sheet =
         render(&inputs, &moving_on_fixed, &warped, &field, &jacdet, warped_labels.as_ref(), &names, title, &opts)?;
     sinew_qc::write_png(&args.out, &sheet.image)?;

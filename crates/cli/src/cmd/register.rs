@@ -64,6 +64,51 @@ pub struct RegisterArgs {
     /// (uncompressed: larger files, faster to write on native-resolution grids).
     #[arg(long, value_enum, default_value_t = OutFormat::NiiGz)]
     pub out_format: OutFormat,
+    /// Preset, config file and the flags over them.
+    #[command(flatten)]
+    pub params: ParamArgs,
+    /// Working grid, initial alignment, anti-aliasing and NaN voxels.
+    #[command(flatten)]
+    pub scan: ScanArgs,
+    /// Worker threads (default: all cores).
+    #[arg(long, short = 'j')]
+    pub threads: Option<usize>,
+    /// Do not draw the quality-control sheet `qc.png`.
+    #[arg(long)]
+    pub no_qc: bool,
+    /// Grey window of qc.png: `lo,hi` in the fixed scan's units, or `auto` (-200,300 when the
+    /// fixed scan is in Hounsfield units, i.e. its values reach <= -500 and >= 300; else the
+    /// 1st to 99th percentile of its foreground). The window used is recorded in report.json.
+    #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = crate::cmd::qc::window_arg)]
+    pub qc_window: sinew_qc::Window,
+    /// Label names for the QC sheet's legend: a JSON object `{"1": "liver", ...}` (default:
+    /// `labels.json` beside --fixed-labels when there is one; else labels are shown by number).
+    #[arg(long, value_name = "JSON")]
+    pub label_names: Option<PathBuf>,
+    /// No progress bar and no summary.
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+const REGISTER_EXAMPLES: &str = "Examples:
+  sinew register -f demo-data/subject_00_image.nii.gz -m demo-data/subject_01_image.nii.gz \\
+      --fixed-labels demo-data/subject_00_labels.nii.gz \\
+      --moving-labels demo-data/subject_01_labels.nii.gz -o out/pair_00_01
+  sinew register -f a.nii.gz -m b.nii.gz -o out --preset accurate --diffeomorphic
+  sinew register -f a.nii.gz -m b.nii.gz -o out --config params.toml --field-units voxel
+  sinew register -f a_unit.nii.gz -m b_unit.nii.gz -o out --qc-window 0.3,0.6
+
+Outputs in DIR: field.nii.gz (displacement, pull: warped(x) = moving(x + u(x))),
+warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz (.nii with
+--out-format nii), qc.png (unless --no-qc),
+affine.json (when a linear map was used: --affine rigid|affine, or the initial alignment of
+scans in different frames; the 4x4 world-mm matrix, fixed point x -> moving A.x),
+report.json (written last: its presence marks a complete folder).";
+
+/// The registration parameters of `sinew register`: a preset, a TOML file over it, and the
+/// flags over both.
+#[derive(Args, Debug, Clone)]
+pub struct ParamArgs {
     /// Parameter preset: fast, default or accurate.
     #[arg(long, default_value = "default", value_parser = clap::builder::PossibleValuesParser::new(sinew_solve::PRESETS))]
     pub preset: String,
@@ -106,43 +151,44 @@ pub struct RegisterArgs {
     /// affine (12); its matrix is written to affine.json and included in field.nii.gz.
     #[arg(long, value_enum)]
     pub affine: Option<AffineArg>,
-    /// Working grid, initial alignment, anti-aliasing and NaN voxels.
-    #[command(flatten)]
-    pub scan: ScanArgs,
-    /// Worker threads (default: all cores).
-    #[arg(long, short = 'j')]
-    pub threads: Option<usize>,
-    /// Do not draw the quality-control sheet `qc.png`.
-    #[arg(long)]
-    pub no_qc: bool,
-    /// Grey window of qc.png: `lo,hi` in the fixed scan's units, or `auto` (-200,300 when the
-    /// fixed scan is in Hounsfield units, i.e. its values reach <= -500 and >= 300; else the
-    /// 1st to 99th percentile of its foreground). The window used is recorded in report.json.
-    #[arg(long, value_name = "LO,HI|auto", default_value = "auto", allow_hyphen_values = true, value_parser = crate::cmd::qc::window_arg)]
-    pub qc_window: sinew_qc::Window,
-    /// Label names for the QC sheet's legend: a JSON object `{"1": "liver", ...}` (default:
-    /// `labels.json` beside --fixed-labels when there is one; else labels are shown by number).
-    #[arg(long, value_name = "JSON")]
-    pub label_names: Option<PathBuf>,
-    /// No progress bar and no summary.
-    #[arg(long, short = 'q')]
-    pub quiet: bool,
 }
 
-const REGISTER_EXAMPLES: &str = "Examples:
-  sinew register -f demo-data/subject_00_image.nii.gz -m demo-data/subject_01_image.nii.gz \\
-      --fixed-labels demo-data/subject_00_labels.nii.gz \\
-      --moving-labels demo-data/subject_01_labels.nii.gz -o out/pair_00_01
-  sinew register -f a.nii.gz -m b.nii.gz -o out --preset accurate --diffeomorphic
-  sinew register -f a.nii.gz -m b.nii.gz -o out --config params.toml --field-units voxel
-  sinew register -f a_unit.nii.gz -m b_unit.nii.gz -o out --qc-window 0.3,0.6
+impl ParamArgs {
+    /// Only a preset, a config file and iterations (the other flags unset): the parameters
+    /// `cohort` and `tune` take.
+    pub fn base(preset: &PresetArgs, diffeomorphic: bool) -> ParamArgs {
+        ParamArgs {
+            preset: preset.preset.clone(),
+            config: preset.config.clone(),
+            lambda: None,
+            iterations: preset.iterations.clone(),
+            levels: None,
+            finest_level: None,
+            optimiser: None,
+            similarity: None,
+            diffeomorphic,
+            model: None,
+            grid_spacing: None,
+            affine: None,
+        }
+    }
+}
 
-Outputs in DIR: field.nii.gz (displacement, pull: warped(x) = moving(x + u(x))),
-warped.nii.gz, warped_labels.nii.gz (with --moving-labels), jacdet.nii.gz (.nii with
---out-format nii), qc.png (unless --no-qc),
-affine.json (when a linear map was used: --affine rigid|affine, or the initial alignment of
-scans in different frames; the 4x4 world-mm matrix, fixed point x -> moving A.x),
-report.json (written last: its presence marks a complete folder).";
+/// The parameter options of `sinew cohort` and `sinew tune`: a preset, a TOML file over it,
+/// and the iterations.
+#[derive(Args, Debug, Clone)]
+pub struct PresetArgs {
+    /// Parameter preset for the registrations: fast, default or accurate.
+    #[arg(long, default_value = "default", value_parser = clap::builder::PossibleValuesParser::new(sinew_solve::PRESETS))]
+    pub preset: String,
+    /// A TOML file of parameters applied over the preset (as for `sinew register`).
+    #[arg(long, value_name = "TOML")]
+    pub config: Option<PathBuf>,
+    /// Iterations per optimised level, coarsest first, one number per level (e.g. `40,30,20,10`
+    /// for the 4 levels of the presets).
+    #[arg(long, value_delimiter = ',')]
+    pub iterations: Option<Vec<usize>>,
+}
 
 /// How scans on their own grids and in their own world frames are brought together; shared
 /// by `register`, `cohort` and `demo`.
@@ -277,7 +323,7 @@ pub enum SimilarityArg {
     Lncc,
 }
 
-impl RegisterArgs {
+impl ParamArgs {
     /// The parameters: preset, then config file, then flags.
     pub fn params(&self) -> anyhow::Result<RegParams> {
         let mut p = RegParams::preset(&self.preset).context("unknown preset")?;
@@ -490,7 +536,7 @@ pub struct Timings {
 
 /// Runs `sinew register`.
 pub fn run(args: RegisterArgs) -> anyhow::Result<()> {
-    let params = args.params()?;
+    let params = args.params.params()?;
     common::with_threads(args.threads, || run_pair(&args, &params).map(|_| ()))
 }
 
@@ -796,7 +842,7 @@ fn draw_qc(
     let on_w = |l: &LabelMap| sinew_grid::resample::resample_labels(l, wgrid);
     let moving_labels_w = inputs.moving_labels.as_ref().map(on_w);
     let note = initial_line(reg);
-    let names = crate::cmd::score::label_names_for(args.label_names.as_deref(), args.fixed_labels.as_deref())?;
+    let names = sinew_cohort::label_names_for(args.label_names.as_deref(), args.fixed_labels.as_deref())?;
     if let Some(field) = reg.field.as_full() {
         let input = sinew_qc::QcInput {
             fixed: &reg.fixed_working,
@@ -857,4 +903,26 @@ fn print_summary(out: &Path, r: &Report) {
         println!("mean Dice {:.3} -> {:.3} over {} labels", d.mean_before, d.mean_after, d.labels.len());
     }
     println!("outputs in {}", out.display());
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn an_empty_iteration_list_is_an_error_not_a_panic() {
+        // A config file's `iterations = []` leaves nothing to stretch to the level count that
+        // --levels asks for: an error naming the file (the binary exits with 2), with or
+        // without --levels.
+        let dir = tempfile::tempdir().unwrap();
+        let cfg = dir.path().join("params.toml");
+        std::fs::write(&cfg, "iterations = []\n").unwrap();
+        let preset = PresetArgs { preset: "default".into(), config: Some(cfg), iterations: None };
+        for levels in [Some(3), None] {
+            let mut a = ParamArgs::base(&preset, false);
+            a.levels = levels;
+            let e = format!("{:#}", a.params().unwrap_err());
+            assert!(e.contains("params.toml") && e.contains("iterations"), "{levels:?}: {e}");
+        }
+    }
 }

@@ -6,18 +6,14 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use anyhow::{bail, Context};
+use anyhow::Context;
 use clap::{Args, ValueEnum};
 use serde::{Deserialize, Serialize};
-use sinew_grid::{resample, Field, Grid, LabelMap, WorldPoint};
-use sinew_io::{FieldReadOptions, FieldUnits};
-use sinew_score::import::{import_array, ChannelOrder, Conventions, ImportReport, Layout, LowRes, Units, Values};
-use sinew_score::{InversionReport, LandmarkErrors, PairScore, Warp};
+use sinew_cohort::files::cell;
+use sinew_cohort::{label_names, score_files, Direction, PairFiles, PairResult};
+use sinew_score::import::{ChannelOrder, Layout, LowRes, Units, Values};
 
 use crate::cmd::common;
-
-/// Fixed-point iterations used to invert a push field.
-pub const INVERT_ITERATIONS: usize = 20;
 
 /// Arguments of `sinew score`.
 #[derive(Args, Debug, Clone)]
@@ -185,9 +181,9 @@ pub enum DirectionArg {
 }
 
 impl FieldFormat {
-    /// The import conventions for .npy/.npz arrays.
-    fn conventions(&self) -> Conventions {
-        Conventions {
+    /// How to read the field, as the library takes it.
+    pub fn format(&self) -> sinew_cohort::FieldFormat {
+        sinew_cohort::FieldFormat {
             layout: match self.layout {
                 LayoutArg::Auto => Layout::Auto,
                 LayoutArg::ChannelFirst => Layout::ChannelFirst,
@@ -197,12 +193,12 @@ impl FieldFormat {
                 ChannelOrderArg::Ijk => ChannelOrder::Ijk,
                 ChannelOrderArg::Kji => ChannelOrder::Kji,
             },
-            units: match self.units {
-                None | Some(FieldUnitsArg::Voxel) => Units::Voxel,
-                Some(FieldUnitsArg::Mm) => Units::Mm,
-                Some(FieldUnitsArg::NormCorners) => Units::NormCorners,
-                Some(FieldUnitsArg::NormEdges) => Units::NormEdges,
-            },
+            units: self.units.map(|u| match u {
+                FieldUnitsArg::Voxel => Units::Voxel,
+                FieldUnitsArg::Mm => Units::Mm,
+                FieldUnitsArg::NormCorners => Units::NormCorners,
+                FieldUnitsArg::NormEdges => Units::NormEdges,
+            }),
             values: match self.values {
                 ValuesArg::Displacement => Values::Displacement,
                 ValuesArg::Positions => Values::Positions,
@@ -211,227 +207,13 @@ impl FieldFormat {
                 LowResArg::Blocks => LowRes::Blocks,
                 LowResArg::Corners => LowRes::Corners,
             },
+            npz_key: self.npz_key.clone(),
+            direction: match self.direction {
+                DirectionArg::Pull => Direction::Pull,
+                DirectionArg::Push => Direction::Push,
+            },
         }
     }
-}
-
-/// How a field file was read, for reports.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct FieldNote {
-    /// The file.
-    pub path: String,
-    /// SHA-256 of its bytes.
-    pub sha256: String,
-    /// "nifti", "npy" or "npz".
-    pub format: String,
-    /// The units the numbers were read in ("mm", "voxel", "norm-corners", "norm-edges").
-    pub units: String,
-    /// For .npy/.npz: the stored element type ("float16", "float32", "float64").
-    #[serde(default)]
-    pub dtype: Option<String>,
-    /// For .npz: the archive member read.
-    #[serde(default)]
-    pub npz_key: Option<String>,
-    /// For .npy/.npz: every convention applied or detected (batch axis, layout, component
-    /// order, units, positions, resolution).
-    #[serde(default)]
-    pub import: Option<ImportReport>,
-    /// The direction given.
-    pub direction: DirectionArg,
-    /// With a push field: the fixed-point inversion and its residual.
-    pub inverted: Option<InversionReport>,
-    /// True when the field's grid differed from the fixed grid and it was resampled onto it.
-    pub resampled_to_fixed_grid: bool,
-}
-
-/// Reads a field file (NIfTI, `.npy` or `.npz`) as a pull field on `fixed_grid`: arrays
-/// through `sinew_score::import` (batch axis, layout, component order, units, positions,
-/// resolution), NIfTI from its header (resampled when on another grid); a push field is
-/// inverted.
-pub fn load_field(path: &Path, fixed_grid: &Grid, fmt: &FieldFormat) -> anyhow::Result<(Field, FieldNote)> {
-    let ext = |e: &str| path.extension().is_some_and(|x| x.eq_ignore_ascii_case(e));
-    let (is_npy, is_npz) = (ext("npy"), ext("npz"));
-    let mut note = FieldNote {
-        path: path.display().to_string(),
-        sha256: common::sha256_file(path)?,
-        format: if is_npy {
-            "npy"
-        } else if is_npz {
-            "npz"
-        } else {
-            "nifti"
-        }
-        .into(),
-        units: String::new(),
-        dtype: None,
-        npz_key: None,
-        import: None,
-        direction: fmt.direction,
-        inverted: None,
-        resampled_to_fixed_grid: false,
-    };
-    let field = if is_npy || is_npz {
-        let max_values = fixed_grid.len() * 3;
-        let arr = if is_npy {
-            sinew_io::read_npy_array(path, max_values)?
-        } else {
-            sinew_io::read_npz_array(path, fmt.npz_key.as_deref(), max_values)?
-        };
-        let conv = fmt.conventions();
-        let (field, report) = import_array(&arr.shape, arr.values, fixed_grid, &conv)
-            .with_context(|| format!("{}: on a fixed grid of {:?} voxels", path.display(), fixed_grid.shape()))?;
-        note.units = serde_json::to_value(conv.units)?.as_str().unwrap_or_default().to_string();
-        note.dtype = Some(arr.dtype.to_string());
-        note.npz_key = arr.npz_key;
-        note.resampled_to_fixed_grid = report.resolution_factor > 1;
-        note.import = Some(report);
-        field
-    } else {
-        let non_default = fmt.channel_order != ChannelOrderArg::Ijk
-            || fmt.values != ValuesArg::Displacement
-            || matches!(fmt.units, Some(FieldUnitsArg::NormCorners | FieldUnitsArg::NormEdges))
-            || fmt.npz_key.is_some();
-        if non_default {
-            bail!(
-                "{}: --channel-order, --values, --npz-key and normalised --units apply to .npy/.npz arrays; a NIfTI \
-                 field is read from its header (mm or voxel)",
-                path.display()
-            );
-        }
-        let units = fmt.units.map(|u| match u {
-            FieldUnitsArg::Voxel => FieldUnits::Voxel,
-            _ => FieldUnits::Mm,
-        });
-        let (field, units) = sinew_io::read_field(path, FieldReadOptions { units, ..Default::default() })?;
-        note.units = units.as_str().into();
-        field
-    };
-    if !field.is_finite() {
-        bail!("{}: the field holds NaN or infinite vectors", path.display());
-    }
-    let field = match fmt.direction {
-        DirectionArg::Pull => field,
-        DirectionArg::Push => {
-            let inv = sinew_score::invert_push_field(&field, INVERT_ITERATIONS);
-            note.inverted = Some(inv.report);
-            inv.field
-        }
-    };
-    let resampled = !field.grid.same_as(fixed_grid, 1e-3);
-    note.resampled_to_fixed_grid |= resampled;
-    let field = if resampled { resample::resample_field(&field, fixed_grid) } else { field };
-    Ok((field, note))
-}
-
-/// Reads landmarks: one point a line, the last three comma-separated values are x, y, z in
-/// world mm; blank lines and lines starting with `#` are skipped; a first line that does not
-/// parse is taken as a header.
-pub fn read_landmarks(path: &Path) -> anyhow::Result<Vec<WorldPoint>> {
-    let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
-    let mut points = Vec::new();
-    let mut first = true;
-    for (n, line) in text.lines().enumerate() {
-        let line = line.trim();
-        if line.is_empty() || line.starts_with('#') {
-            continue;
-        }
-        let cells: Vec<&str> = line.split(',').map(str::trim).collect();
-        let parsed: Option<Vec<f64>> = (cells.len() >= 3)
-            .then(|| cells[cells.len() - 3..].iter().map(|c| c.parse::<f64>().ok().filter(|v| v.is_finite())).collect())
-            .flatten();
-        match parsed {
-            Some(v) => points.push([v[0], v[1], v[2]]),
-            None if first => {}
-            None => bail!("{}:{}: expected x,y,z in mm, found {line:?}", path.display(), n + 1),
-        }
-        first = false;
-    }
-    if points.is_empty() {
-        bail!("{}: no landmarks (expected lines of x,y,z in mm)", path.display());
-    }
-    Ok(points)
-}
-
-/// Label value → name from `labels.json` in `dir` (`{"1": "liver", ...}`), empty when absent.
-pub fn label_names(dir: &Path) -> anyhow::Result<BTreeMap<u16, String>> {
-    let path = dir.join("labels.json");
-    if !path.exists() {
-        return Ok(BTreeMap::new());
-    }
-    label_names_file(&path)
-}
-
-/// The label names for a pair's QC sheet: `file` when given (it must exist), else
-/// `labels.json` beside `fixed_labels` when there is one, else none.
-pub fn label_names_for(file: Option<&Path>, fixed_labels: Option<&Path>) -> anyhow::Result<BTreeMap<u16, String>> {
-    match (file, fixed_labels) {
-        (Some(f), _) => label_names_file(f),
-        (None, Some(l)) => label_names(l.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."))),
-        (None, None) => Ok(BTreeMap::new()),
-    }
-}
-
-/// Label value → name from a `labels.json`-style file (`{"1": "liver", ...}`).
-pub fn label_names_file(path: &Path) -> anyhow::Result<BTreeMap<u16, String>> {
-    let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
-    let raw: BTreeMap<String, String> = serde_json::from_str(&text)
-        .with_context(|| format!("{}: expected {{\"1\": \"name\", ...}}", path.display()))?;
-    raw.into_iter()
-        .map(|(k, v)| {
-            Ok((k.parse::<u16>().with_context(|| format!("{}: label {k:?} is not 0..65535", path.display()))?, v))
-        })
-        .collect()
-}
-
-/// The scores of one pair with how they were obtained.
-#[derive(Clone, Debug, Serialize, Deserialize)]
-pub struct PairResult {
-    /// Dice, surface distances and Jacobian statistics.
-    pub score: PairScore,
-    /// Landmark errors (with landmarks and a field).
-    pub landmarks: Option<LandmarkErrors>,
-    /// How the field was read (with a field).
-    pub field: Option<FieldNote>,
-}
-
-/// What to score: the files of one pair.
-pub struct PairFiles<'a> {
-    /// Fixed labels.
-    pub fixed_labels: &'a Path,
-    /// Moving labels.
-    pub moving_labels: &'a Path,
-    /// A field, or else warped labels.
-    pub field: Option<&'a Path>,
-    /// Warped labels (when there is no field).
-    pub warped_labels: Option<&'a Path>,
-    /// Fixed and moving landmarks.
-    pub landmarks: Option<(&'a Path, &'a Path)>,
-}
-
-/// Scores one pair (shared by `sinew score` and `sinew cohort`).
-pub fn score_files(files: &PairFiles<'_>, fmt: &FieldFormat) -> anyhow::Result<PairResult> {
-    let fixed = sinew_io::read_labels(files.fixed_labels)?;
-    let moving = sinew_io::read_labels(files.moving_labels)?;
-    let (score, landmarks, note) = if let Some(fp) = files.field {
-        let (field, note) = load_field(fp, &fixed.grid, fmt)?;
-        let score = sinew_score::score_pair(&fixed, &moving, Warp::Field(&field))
-            .with_context(|| format!("scoring {}", fp.display()))?;
-        let landmarks = match files.landmarks {
-            Some((f, m)) => Some(
-                sinew_score::landmark_errors(&field, &read_landmarks(f)?, &read_landmarks(m)?)
-                    .with_context(|| format!("landmarks {} and {}", f.display(), m.display()))?,
-            ),
-            None => None,
-        };
-        (score, landmarks, Some(note))
-    } else {
-        let wp = files.warped_labels.expect("clap requires --field or --warped-labels");
-        let warped: LabelMap = sinew_io::read_labels(wp)?;
-        let score = sinew_score::score_pair(&fixed, &moving, Warp::Warped(&warped))
-            .with_context(|| format!("{}: must lie on the fixed labels' grid", wp.display()))?;
-        (score, None, None)
-    };
-    Ok(PairResult { score, landmarks, field: note })
 }
 
 /// The JSON report of `sinew score`.
@@ -469,7 +251,7 @@ pub fn run(args: ScoreArgs) -> anyhow::Result<()> {
             warped_labels: args.warped_labels.as_deref(),
             landmarks: args.fixed_landmarks.as_deref().zip(args.moving_landmarks.as_deref()),
         };
-        let result = score_files(&files, &args.field_format)?;
+        let result = score_files(&files, &args.field_format.format())?;
         let names = label_names(args.fixed_labels.parent().unwrap_or(Path::new(".")))?;
         let bytes = if args.csv {
             csv_rows(&result, &names).into_bytes()
@@ -500,11 +282,6 @@ pub fn run(args: ScoreArgs) -> anyhow::Result<()> {
         }
         Ok(())
     })
-}
-
-/// Formats an optional number for CSV: empty when undefined, else Rust's shortest exact form.
-pub fn cell(v: Option<f64>) -> String {
-    v.map(|x| x.to_string()).unwrap_or_default()
 }
 
 /// The header of `sinew score --csv`.

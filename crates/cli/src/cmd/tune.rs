@@ -34,7 +34,7 @@ use sinew_solve::RegParams;
 use crate::cmd::cohort::manifest::{self, NamedPair};
 use crate::cmd::cohort::{all_pairs, Pair, Shard, Subject};
 use crate::cmd::common;
-use crate::cmd::register::{RegisterArgs, ScanArgs, UnitsArg};
+use crate::cmd::register::{ParamArgs, PresetArgs, ScanArgs};
 use crate::ui;
 use search::{Budget, Outcome, Planned, Search};
 
@@ -82,15 +82,10 @@ pub struct TuneArgs {
     /// Output folder (created if needed; rerunning the same command into it resumes).
     #[arg(long, short = 'o', value_name = "DIR")]
     pub out: PathBuf,
-    /// The starting parameters (and the default the result is compared with): a preset ...
-    #[arg(long, default_value = "default", value_parser = clap::builder::PossibleValuesParser::new(sinew_solve::PRESETS))]
-    pub preset: String,
-    /// ... with a TOML file of parameters applied over it (as for `sinew register`).
-    #[arg(long, value_name = "TOML")]
-    pub config: Option<PathBuf>,
-    /// Iterations per optimised level of the starting parameters, coarsest first.
-    #[arg(long, value_delimiter = ',')]
-    pub iterations: Option<Vec<usize>>,
+    /// The starting parameters (and the default the result is compared with): preset, config
+    /// file and iterations.
+    #[command(flatten)]
+    pub params: PresetArgs,
     /// Working grid, initial alignment, anti-aliasing and NaN voxels of every pair (as in
     /// `sinew register`).
     #[command(flatten)]
@@ -345,36 +340,7 @@ pub fn holdout_split(n: usize, fraction: f64, seed: u64) -> Vec<usize> {
 
 /// The base parameters: preset, config file, `--iterations`.
 pub(crate) fn base_params(args: &TuneArgs) -> anyhow::Result<RegParams> {
-    RegisterArgs {
-        out_format: crate::cmd::register::OutFormat::NiiGz,
-        fixed: PathBuf::new(),
-        moving: PathBuf::new(),
-        out: PathBuf::new(),
-        fixed_labels: None,
-        moving_labels: None,
-        mask: None,
-        field_units: UnitsArg::Mm,
-        npy: false,
-        preset: args.preset.clone(),
-        config: args.config.clone(),
-        lambda: None,
-        iterations: args.iterations.clone(),
-        levels: None,
-        finest_level: None,
-        optimiser: None,
-        similarity: None,
-        diffeomorphic: false,
-        model: None,
-        grid_spacing: None,
-        affine: None,
-        scan: args.scan.clone(),
-        threads: None,
-        no_qc: true,
-        qc_window: sinew_qc::Window::Auto,
-        label_names: None,
-        quiet: true,
-    }
-    .params()
+    ParamArgs::base(&args.params, false).params()
 }
 
 /// Runs `sinew tune`.
@@ -836,7 +802,7 @@ fn check_settings(path: &Path, settings: &Settings) -> anyhow::Result<()> {
         }
         return Ok(());
     }
-    common::write_json(path, settings)
+    Ok(common::write_json(path, settings)?)
 }
 
 /// Removes temporaries (`.<name>.tmp-…`) of interrupted atomic writes. With shards running

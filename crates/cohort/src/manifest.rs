@@ -2,7 +2,7 @@
 
 use std::path::{Path, PathBuf};
 
-use anyhow::{bail, Context};
+use crate::{Context, Result};
 use serde::Deserialize;
 
 /// One subject: a scan with its label map and optional mask and landmarks.
@@ -76,7 +76,7 @@ impl Shard {
 }
 
 /// Checks an identifier for use in folder names.
-fn check_id(id: &str, origin: &Path) -> anyhow::Result<()> {
+fn check_id(id: &str, origin: &Path) -> Result<()> {
     let ok = !id.is_empty()
         && !id.contains("__")
         && !id.starts_with('.')
@@ -95,7 +95,7 @@ fn check_id(id: &str, origin: &Path) -> anyhow::Result<()> {
 /// with `fixed`, `moving`) or CSV (header naming the columns `id,image,labels` and
 /// optionally `mask,landmarks`; empty cells for missing files). Relative paths are taken from
 /// the manifest's folder.
-pub fn read_manifest(path: &Path) -> anyhow::Result<(Vec<Subject>, Option<Vec<NamedPair>>)> {
+pub fn read_manifest(path: &Path) -> Result<(Vec<Subject>, Option<Vec<NamedPair>>)> {
     let text =
         std::fs::read_to_string(path).with_context(|| format!("{}: cannot read the manifest", path.display()))?;
     let is_toml = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("toml"));
@@ -123,7 +123,7 @@ pub struct NamedPair {
     pub moving: String,
 }
 
-fn parse_toml(text: &str, path: &Path) -> anyhow::Result<(Vec<Subject>, Option<Vec<NamedPair>>)> {
+fn parse_toml(text: &str, path: &Path) -> Result<(Vec<Subject>, Option<Vec<NamedPair>>)> {
     #[derive(Deserialize)]
     #[serde(deny_unknown_fields)]
     struct Manifest {
@@ -131,12 +131,15 @@ fn parse_toml(text: &str, path: &Path) -> anyhow::Result<(Vec<Subject>, Option<V
         #[serde(default)]
         pair: Option<Vec<NamedPair>>,
     }
-    let m: Manifest = toml::from_str(text)
-        .map_err(|e| anyhow::anyhow!("{}: {}", path.display(), e.message().replace('\n', " ")))
-        .context(
+    // The expectation first, then the file and the parser's message (one line).
+    let m: Manifest = toml::from_str(text).map_err(|e| {
+        crate::CohortError::Invalid(format!(
             "expected [[subject]] tables with id, image, labels and optional mask, landmarks, and optional \
-             [[pair]] tables with fixed, moving",
-        )?;
+             [[pair]] tables with fixed, moving: {}: {}",
+            path.display(),
+            e.message().replace('\n', " ")
+        ))
+    })?;
     Ok((m.subject, m.pair))
 }
 
@@ -146,7 +149,7 @@ pub type Record = (u64, Vec<String>);
 /// Reads a CSV table through the `csv` crate: a header row, then records; lines starting with
 /// `#` and blank lines are skipped, cells are trimmed, quoted cells may hold commas and
 /// newlines (RFC 4180). Returns the lower-cased header and the records with their line numbers.
-pub fn read_table(text: &str, path: &Path) -> anyhow::Result<(Vec<String>, Vec<Record>)> {
+pub fn read_table(text: &str, path: &Path) -> Result<(Vec<String>, Vec<Record>)> {
     let mut rdr =
         csv::ReaderBuilder::new().comment(Some(b'#')).trim(csv::Trim::All).flexible(true).from_reader(text.as_bytes());
     let header: Vec<String> = rdr
@@ -173,7 +176,7 @@ pub fn read_table(text: &str, path: &Path) -> anyhow::Result<(Vec<String>, Vec<R
     Ok((header, records))
 }
 
-fn parse_csv(text: &str, path: &Path) -> anyhow::Result<Vec<Subject>> {
+fn parse_csv(text: &str, path: &Path) -> Result<Vec<Subject>> {
     let (cols, records) = read_table(text, path)?;
     let find = |name: &str| cols.iter().position(|c| c == name);
     let (Some(id), Some(image), Some(labels)) = (find("id"), find("image"), find("labels")) else {
@@ -205,7 +208,7 @@ fn parse_csv(text: &str, path: &Path) -> anyhow::Result<Vec<Subject>> {
 
 /// Reads a pair list: CSV with the columns `fixed,moving` (subject ids; a header line naming
 /// them first, other columns refused), one pair a line, in the order the pairs get their index.
-pub fn read_pair_list(path: &Path) -> anyhow::Result<Vec<NamedPair>> {
+pub fn read_pair_list(path: &Path) -> Result<Vec<NamedPair>> {
     let text =
         std::fs::read_to_string(path).with_context(|| format!("{}: cannot read the pair list", path.display()))?;
     let (cols, records) = read_table(&text, path)?;
@@ -218,7 +221,7 @@ pub fn read_pair_list(path: &Path) -> anyhow::Result<Vec<NamedPair>> {
 /// The pairs of a pair list, by subject position, in list order (index = position in the
 /// list). Unknown ids, a subject paired with itself and a pair listed twice are errors
 /// (the reverse pair is a different pair).
-pub fn resolve_pairs(named: &[NamedPair], subjects: &[Subject], origin: &Path) -> anyhow::Result<Vec<Pair>> {
+pub fn resolve_pairs(named: &[NamedPair], subjects: &[Subject], origin: &Path) -> Result<Vec<Pair>> {
     if named.is_empty() {
         bail!("{}: the pair list is empty", origin.display());
     }
@@ -242,7 +245,7 @@ pub fn resolve_pairs(named: &[NamedPair], subjects: &[Subject], origin: &Path) -
     Ok(pairs)
 }
 
-fn check_subjects(subjects: &[Subject], origin: &Path) -> anyhow::Result<()> {
+fn check_subjects(subjects: &[Subject], origin: &Path) -> Result<()> {
     if subjects.len() < 2 {
         bail!("{}: {} subject(s); a cohort needs at least two", origin.display(), subjects.len());
     }
@@ -257,7 +260,7 @@ fn check_subjects(subjects: &[Subject], origin: &Path) -> anyhow::Result<()> {
 
 /// The subjects of a folder: every `<id>_image.nii.gz` with a matching `<id>_labels.nii.gz`
 /// (the layout `sinew demo` writes), sorted by id. An image without labels is an error.
-pub fn scan_folder(dir: &Path) -> anyhow::Result<Vec<Subject>> {
+pub fn scan_folder(dir: &Path) -> Result<Vec<Subject>> {
     let entries = std::fs::read_dir(dir).with_context(|| format!("{}: cannot list the folder", dir.display()))?;
     let mut subjects = Vec::new();
     for e in entries {

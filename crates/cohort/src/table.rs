@@ -4,12 +4,11 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 
-use anyhow::{bail, Context};
 use serde::Serialize;
 use sinew_score::Summary;
 
-use crate::cmd::common;
-use crate::cmd::score::cell;
+use crate::files::{cell, write_json};
+use crate::{Context, Result, CAUTION};
 
 /// The baseline's method name in the tables.
 pub const BASELINE: &str = "sinew";
@@ -119,7 +118,7 @@ pub fn to_csv(rows: &[Row]) -> String {
 
 /// Reads a `scores.csv` written by [`to_csv`]. A number cell that does not parse, or is NaN or
 /// infinite, is an error naming the file, the line and the column.
-pub fn read_csv(path: &Path) -> anyhow::Result<Vec<Row>> {
+pub fn read_csv(path: &Path) -> Result<Vec<Row>> {
     let bytes = std::fs::read(path).with_context(|| format!("{}: cannot read", path.display()))?;
     let mut rdr = csv::ReaderBuilder::new().has_headers(false).from_reader(bytes.as_slice());
     let mut records = rdr.records();
@@ -136,7 +135,7 @@ pub fn read_csv(path: &Path) -> anyhow::Result<Vec<Row>> {
         if c.len() != columns.len() {
             bail!("{}: {} cells, expected {}", at(), c.len(), columns.len());
         }
-        let num = |i: usize| -> anyhow::Result<Option<f64>> {
+        let num = |i: usize| -> Result<Option<f64>> {
             if c[i].is_empty() {
                 return Ok(None);
             }
@@ -174,7 +173,7 @@ pub fn read_csv(path: &Path) -> anyhow::Result<Vec<Row>> {
 
 /// Joins tables: identical rows collapse (a pair scored by two shards that shared an output
 /// folder); two different rows for the same method, pair and label are an error.
-pub fn merge_rows(tables: Vec<(String, Vec<Row>)>) -> anyhow::Result<Vec<Row>> {
+pub fn merge_rows(tables: Vec<(String, Vec<Row>)>) -> Result<Vec<Row>> {
     let mut by_key: BTreeMap<(usize, usize, String, u16), (Row, String)> = BTreeMap::new();
     for (origin, rows) in tables {
         for r in rows {
@@ -304,7 +303,7 @@ ln(det) over the voxels with det > 0 (voxels with det ≤ 0 excluded; their coun
 \"mean over labels\" summarises each pair's mean Dice over its labels.";
 
 /// Writes `summary.json` and `summary.md` into `dir`.
-pub fn write_summaries(dir: &Path, rows: &[Row], robust_percentile: f64) -> anyhow::Result<()> {
+pub fn write_summaries(dir: &Path, rows: &[Row], robust_percentile: f64) -> Result<()> {
     let methods = summarise(rows, robust_percentile);
     #[derive(Serialize)]
     struct Doc<'a> {
@@ -312,9 +311,9 @@ pub fn write_summaries(dir: &Path, rows: &[Row], robust_percentile: f64) -> anyh
         definitions: &'static str,
         methods: &'a [MethodSummary],
     }
-    common::write_json(
+    write_json(
         &dir.join("summary.json"),
-        &Doc { caution: common::CAUTION, definitions: DEFINITIONS, methods: &methods },
+        &Doc { caution: CAUTION, definitions: DEFINITIONS, methods: &methods },
     )?;
     sinew_io::atomic::write_bytes_atomic(&dir.join("summary.md"), markdown(&methods).as_bytes())?;
     Ok(())
@@ -326,7 +325,7 @@ fn f(v: Option<f64>, digits: usize) -> String {
 
 /// The Markdown summary: the caution, one table row per method × label, the definitions.
 pub fn markdown(methods: &[MethodSummary]) -> String {
-    let mut s = format!("> **Caution.** {}\n\n# Registration summary\n\n", common::CAUTION);
+    let mut s = format!("> **Caution.** {}\n\n# Registration summary\n\n", CAUTION);
     let q = methods.iter().flat_map(|m| &m.labels).find_map(|l| l.dice.as_ref()).map_or(30.0, |d| d.robust_percentile);
     s.push_str(&format!("| method | label | name | pairs | Dice mean | Dice std | Dice median | Dice P{q} (robustness) | Dice before | HD95 mean (mm) | folding (%) | SDlogJ |\n"));
     s.push_str("|---|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|\n");

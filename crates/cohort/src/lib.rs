@@ -1,0 +1,35 @@
+//! Cohorts on disk, with a typed API used by `sinew cohort`, `sinew score`, `sinew tune` and
+//! `sinew demo`:
+//! - [`manifest`]: the subjects of a cohort (a TOML or CSV manifest, or a folder in the
+//!   layout `sinew demo` writes), pair lists, all pairs `i < j`, shards `K/N`;
+//! - [`files`]: scoring the files of one pair (label maps, a field in any supported form,
+//!   landmarks) and the per-pair score records (`score.json`, `methods/NAME/<pair>.json`);
+//! - [`table`]: `scores.csv` (written and read through the `csv` crate), joining shards'
+//!   tables, and `summary.json` / `summary.md`.
+//!
+//! Every error is a [`CohortError`] naming the file and the problem in one line.
+#![deny(missing_docs)]
+
+/// Returns early with [`CohortError::Invalid`] and a formatted message.
+macro_rules! bail {
+    ($($t:tt)*) => {
+        return Err($crate::CohortError::Invalid(format!($($t)*)))
+    };
+}
+
+mod error;
+pub mod files;
+pub mod manifest;
+pub mod table;
+
+pub use error::{CohortError, Context, Result, Wrap};
+pub use files::{
+    label_names, label_names_file, label_names_for, load_field, read_landmarks, score_files, sha256_file, write_json,
+    Direction, FieldFormat, FieldNote, PairFiles, PairRecord, PairResult,
+};
+pub use manifest::{all_pairs, NamedPair, Pair, Shard, Subject};
+pub use table::{Row, BASELINE};
+
+/// The caution printed in every report and summary.
+pub const CAUTION: &str = "Research use only; not for diagnosis or treatment. Check every registration visually \
+(a qualified person) before using it; local regulations and clinical practice govern any clinical use.";
