@@ -30,6 +30,4 @@ pub use files::{
 pub use manifest::{all_pairs, NamedPair, Pair, Shard, Subject};
 pub use table::{Row, BASELINE};
 
-/// The caution printed in every report and summary.
-pub const CAUTION: &str = "Research use only; not for diagnosis or treatment. Check every registration visually \
-(a qualified person) before using it; local regulations and clinical practice govern any clinical use.";
+pub use sinew_score::CAUTION;

@@ -11,7 +11,6 @@
 //! - [`field_from_channel_last`], [`score`], [`mind_ssc`]: the field, scoring and descriptor
 //!   conventions of `sinew score` / `sinew warp`.
 
-use std::collections::BTreeMap;
 use std::time::Instant;
 
 use ndarray::{Array4, ArrayView3, ArrayView4};
@@ -21,10 +20,7 @@ use sinew_grid::{resample, Affine, Border, Field, Grid, Image, LabelMap, Volume,
 use sinew_solve::{Progress, RegParams};
 
 use crate::error::{input, ApiError};
-
-/// The caution every report carries (the command line's wording).
-pub const CAUTION: &str = "Research use only; not for diagnosis or treatment. Check every registration visually \
-(a qualified person) before using it; local regulations and clinical practice govern any clinical use.";
+pub use sinew_score::{dice_report, DiceReport, CAUTION};
 
 /// Fixed-point iterations used to invert a push field (as `sinew score`).
 pub const INVERT_ITERATIONS: usize = 20;
@@ -278,22 +274,6 @@ pub struct Timings {
     pub total_s: f64,
 }
 
-/// Dice per label before (moving labels resampled onto the fixed grid, identity map) and
-/// after registration; the labels scored are those of the fixed map.
-#[derive(Serialize, Clone, Debug)]
-pub struct DiceReport {
-    /// Labels scored: those present in the fixed label map.
-    pub labels: Vec<u16>,
-    /// Dice before registration, by label.
-    pub before: BTreeMap<u16, Option<f64>>,
-    /// Dice after registration, by label.
-    pub after: BTreeMap<u16, Option<f64>>,
-    /// Mean over labels before.
-    pub mean_before: f64,
-    /// Mean over labels after.
-    pub mean_after: f64,
-}
-
 /// The report of one registration: the fields of `sinew register`'s `report.json` less the
 /// input and output files.
 #[derive(Serialize, Clone, Debug)]
@@ -401,21 +381,6 @@ pub fn register(
         affine: reg.affine,
     };
     Ok(Output { field: reg.field, warped, warped_labels, jacdet, report })
-}
-
-/// Dice of the moving labels before (resampled onto the fixed grid) and after warping.
-pub fn dice_report(fixed: &LabelMap, moving: &LabelMap, warped: &LabelMap) -> Result<DiceReport, ApiError> {
-    let labels = fixed.labels();
-    let before_map = resample::resample_labels(moving, &fixed.grid);
-    let before = sinew_score::dice_per_label(fixed, &before_map, &labels)?;
-    let after = sinew_score::dice_per_label(fixed, warped, &labels)?;
-    Ok(DiceReport {
-        mean_before: sinew_score::mean_dice(&before).unwrap_or(f64::NAN),
-        mean_after: sinew_score::mean_dice(&after).unwrap_or(f64::NAN),
-        before: before.into_iter().collect(),
-        after: after.into_iter().collect(),
-        labels,
-    })
 }
 
 /// Runs `f` on a pool of `threads` workers (the current pool when `None`).

@@ -93,3 +93,35 @@ mod tests {
         assert!(matches!(dice_per_label(&a, &b, &[1]), Err(ScoreError::GridMismatch(_))));
     }
 }
+
+/// Dice per label before (moving labels resampled onto the fixed grid, identity map) and
+/// after registration; the labels scored are those of the fixed map.
+#[derive(serde::Serialize, Clone, Debug)]
+pub struct DiceReport {
+    /// Labels scored: those present in the fixed label map.
+    pub labels: Vec<u16>,
+    /// Dice before registration, by label.
+    pub before: std::collections::BTreeMap<u16, Option<f64>>,
+    /// Dice after registration, by label.
+    pub after: std::collections::BTreeMap<u16, Option<f64>>,
+    /// Mean over labels before (NaN when no label is defined).
+    pub mean_before: f64,
+    /// Mean over labels after (NaN when no label is defined).
+    pub mean_after: f64,
+}
+
+/// Dice of the moving labels before (resampled onto the fixed grid, nearest label) and
+/// after warping (`warped` on the fixed grid), for the labels of `fixed`.
+pub fn dice_report(fixed: &LabelMap, moving: &LabelMap, warped: &LabelMap) -> Result<DiceReport, ScoreError> {
+    let labels = fixed.labels();
+    let before_map = sinew_grid::resample::resample_labels(moving, &fixed.grid);
+    let before = dice_per_label(fixed, &before_map, &labels)?;
+    let after = dice_per_label(fixed, warped, &labels)?;
+    Ok(DiceReport {
+        mean_before: mean_dice(&before).unwrap_or(f64::NAN),
+        mean_after: mean_dice(&after).unwrap_or(f64::NAN),
+        before: before.into_iter().collect(),
+        after: after.into_iter().collect(),
+        labels,
+    })
+}

@@ -32,7 +32,7 @@ pub mod pair;
 pub mod stats;
 pub mod surface;
 
-pub use dice::{dice_per_label, mean_dice};
+pub use dice::{dice_per_label, dice_report, mean_dice, DiceReport};
 pub use edt::squared_distance_transform;
 pub use error::ScoreError;
 pub use invert::{invert_push_field, Inversion, InversionReport};
@@ -40,3 +40,7 @@ pub use landmarks::{landmark_errors, LandmarkErrors};
 pub use pair::{score_pair, JacobianScore, LabelScore, PairScore, Warp};
 pub use stats::{mean, percentile_linear, Summary, ROBUST_PERCENTILE};
 pub use surface::{surface_distances, SurfaceDistances};
+
+/// The caution every report and summary carries.
+pub const CAUTION: &str = "Research use only; not for diagnosis or treatment. Check every registration visually \
+(a qualified person) before using it; local regulations and clinical practice govern any clinical use.";

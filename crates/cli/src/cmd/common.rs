@@ -1,13 +1,13 @@
 //! What several subcommands share: loading and checking inputs, output folders, JSON, Dice.
 
-use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context};
 use serde::Serialize;
-use sinew_grid::{resample, Image, LabelMap};
+use sinew_grid::{Image, LabelMap};
 
 pub use sinew_cohort::{sha256_file, write_json, CAUTION};
+pub use sinew_score::{dice_report, DiceReport};
 
 /// The inputs of one pair, read and checked.
 pub struct Inputs {
@@ -225,36 +225,6 @@ pub fn prepare_out_dir(dir: &Path, outputs: &[PathBuf], inputs: &[PathBuf]) -> a
         sinew_io::atomic::ensure_not_input(o, inputs)?;
     }
     Ok(())
-}
-
-/// Dice per label before (moving labels on the fixed grid, identity map) and after.
-#[derive(Serialize, Clone)]
-pub struct DiceReport {
-    /// Labels scored: those present in the fixed label map.
-    pub labels: Vec<u16>,
-    /// Dice before registration, by label.
-    pub before: BTreeMap<u16, Option<f64>>,
-    /// Dice after registration, by label.
-    pub after: BTreeMap<u16, Option<f64>>,
-    /// Mean over labels before.
-    pub mean_before: f64,
-    /// Mean over labels after.
-    pub mean_after: f64,
-}
-
-/// Dice of the moving labels before (resampled onto the fixed grid) and after warping.
-pub fn dice_report(fixed: &LabelMap, moving: &LabelMap, warped: &LabelMap) -> anyhow::Result<DiceReport> {
-    let labels = fixed.labels();
-    let before_map = resample::resample_labels(moving, &fixed.grid);
-    let before = sinew_score::dice_per_label(fixed, &before_map, &labels)?;
-    let after = sinew_score::dice_per_label(fixed, warped, &labels)?;
-    Ok(DiceReport {
-        mean_before: sinew_score::mean_dice(&before).unwrap_or(f64::NAN),
-        mean_after: sinew_score::mean_dice(&after).unwrap_or(f64::NAN),
-        before: before.into_iter().collect(),
-        after: after.into_iter().collect(),
-        labels,
-    })
 }
 
 /// Runs `f` on a thread pool of `threads` workers (all cores when `None`).
