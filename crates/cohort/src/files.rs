@@ -127,7 +127,8 @@ pub fn load_field(path: &Path, fixed_grid: &Grid, fmt: &FieldFormat) -> Result<(
         let conv = fmt.conventions();
         let (field, report) = import_array(&arr.shape, arr.values, fixed_grid, &conv)
             .with_context(|| format!("{}: on a fixed grid of {:?} voxels", path.display(), fixed_grid.shape()))?;
-        note.units = serde_json::to_value(conv.units).context("serialising the units")?.as_str().unwrap_or_default().to_string();
+        note.units =
+            serde_json::to_value(conv.units).context("serialising the units")?.as_str().unwrap_or_default().to_string();
         note.dtype = Some(arr.dtype.to_string());
         note.npz_key = arr.npz_key;
         note.resampled_to_fixed_grid = report.resolution_factor > 1;
@@ -311,7 +312,6 @@ pub fn write_json<T: Serialize>(path: &Path, value: &T) -> Result<()> {
     Ok(())
 }
 
-
 /// The scores of one pair and method as stored in `score.json` / `methods/NAME/<pair>.json`.
 #[derive(Serialize, Deserialize)]
 pub struct PairRecord {
@@ -368,10 +368,7 @@ pub fn remove_stray_temporaries(dir: &Path) {
 }
 
 /// Reads a method's runtimes (`sinew cohort --runtimes`): CSV `fixed,moving,runtime_s` (seconds, finite, ≥ 0) of known subjects.
-pub fn read_runtimes(
-    path: &Path,
-    subjects: &[Subject],
-) -> Result<std::collections::BTreeMap<(String, String), f64>> {
+pub fn read_runtimes(path: &Path, subjects: &[Subject]) -> Result<std::collections::BTreeMap<(String, String), f64>> {
     let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
     let (cols, records) = crate::manifest::read_table(&text, path)?;
     if cols != ["fixed", "moving", "runtime_s"] {
@@ -458,4 +455,3 @@ pub fn rows_of(r: &PairRecord, names: &std::collections::BTreeMap<u16, String>) 
         })
         .collect()
 }
-

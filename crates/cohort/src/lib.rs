@@ -27,7 +27,7 @@ pub use files::{
     label_names, label_names_file, label_names_for, load_field, read_landmarks, score_files, sha256_file, write_json,
     Direction, FieldFormat, FieldNote, PairFiles, PairRecord, PairResult,
 };
-pub use manifest::{all_pairs, NamedPair, Pair, Shard, Subject};
+pub use manifest::{all_pairs, Cohort, NamedPair, Pair, Shard, Source, Subject};
 pub use table::{Row, BASELINE};
 
 pub use sinew_score::CAUTION;

@@ -98,8 +98,14 @@ fn check_id(id: &str, origin: &Path) -> Result<()> {
 pub fn read_manifest(path: &Path) -> Result<(Vec<Subject>, Option<Vec<NamedPair>>)> {
     let text =
         std::fs::read_to_string(path).with_context(|| format!("{}: cannot read the manifest", path.display()))?;
+    parse_manifest(&text, path)
+}
+
+/// [`read_manifest`] of a manifest held in memory: `path` names it in errors, its extension
+/// chooses the format and its folder is where relative paths are taken from.
+pub fn parse_manifest(text: &str, path: &Path) -> Result<(Vec<Subject>, Option<Vec<NamedPair>>)> {
     let is_toml = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("toml"));
-    let (mut subjects, pairs) = if is_toml { parse_toml(&text, path)? } else { (parse_csv(&text, path)?, None) };
+    let (mut subjects, pairs) = if is_toml { parse_toml(text, path)? } else { (parse_csv(text, path)?, None) };
     let base = path.parent().unwrap_or(Path::new(""));
     for s in &mut subjects {
         for p in [Some(&mut s.image), Some(&mut s.labels), s.mask.as_mut(), s.landmarks.as_mut()].into_iter().flatten()
@@ -211,7 +217,12 @@ fn parse_csv(text: &str, path: &Path) -> Result<Vec<Subject>> {
 pub fn read_pair_list(path: &Path) -> Result<Vec<NamedPair>> {
     let text =
         std::fs::read_to_string(path).with_context(|| format!("{}: cannot read the pair list", path.display()))?;
-    let (cols, records) = read_table(&text, path)?;
+    parse_pair_list(&text, path)
+}
+
+/// [`read_pair_list`] of a list held in memory; `path` names it in errors.
+pub fn parse_pair_list(text: &str, path: &Path) -> Result<Vec<NamedPair>> {
+    let (cols, records) = read_table(text, path)?;
     if cols != ["fixed", "moving"] {
         bail!("{}: the header must be fixed,moving (subject ids), found {}", path.display(), cols.join(","));
     }
@@ -275,6 +286,57 @@ pub fn scan_folder(dir: &Path) -> Result<Vec<Subject>> {
     subjects.sort_by(|a, b| a.id.cmp(&b.id));
     check_subjects(&subjects, dir)?;
     Ok(subjects)
+}
+
+/// Where a cohort's subjects and pairs come from: a manifest or a folder in the layout
+/// `sinew demo` writes, and optionally a pair list.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Source {
+    /// A manifest (TOML or CSV), see [`read_manifest`].
+    pub manifest: Option<PathBuf>,
+    /// A folder of `<id>_image.nii.gz` + `<id>_labels.nii.gz` files, see [`scan_folder`]
+    /// (used when there is no manifest).
+    pub all_pairs: Option<PathBuf>,
+    /// A pair list, see [`read_pair_list`] (not together with a manifest's `[[pair]]` tables).
+    pub pairs: Option<PathBuf>,
+}
+
+/// A cohort's subjects and every pair to run.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Cohort {
+    /// The subjects.
+    pub subjects: Vec<Subject>,
+    /// The pairs: those of the pair list or the manifest's `[[pair]]` tables in list order,
+    /// else every pair `i < j`.
+    pub pairs: Vec<Pair>,
+    /// The manifest's folder or the subjects' folder (where `labels.json` is looked for).
+    pub dir: PathBuf,
+}
+
+impl Source {
+    /// Reads the subjects and resolves the pairs.
+    pub fn load(&self) -> Result<Cohort> {
+        let (subjects, listed, dir) = match (&self.manifest, &self.all_pairs) {
+            (Some(m), _) => {
+                let (subjects, listed) = read_manifest(m)?;
+                (subjects, listed.map(|l| (l, m.clone())), m.parent().unwrap_or(Path::new(".")).to_path_buf())
+            }
+            (None, Some(d)) => (scan_folder(d)?, None, d.clone()),
+            (None, None) => bail!("give --manifest FILE or --all-pairs DIR"),
+        };
+        let listed = match (&self.pairs, listed) {
+            (Some(p), Some((_, m))) => {
+                bail!("{}: lists [[pair]] tables and --pairs {} was given too; keep one", m.display(), p.display())
+            }
+            (Some(p), None) => Some((read_pair_list(p)?, p.clone())),
+            (None, l) => l,
+        };
+        let pairs = match &listed {
+            Some((named, origin)) => resolve_pairs(named, &subjects, origin)?,
+            None => all_pairs(subjects.len()),
+        };
+        Ok(Cohort { subjects, pairs, dir })
+    }
 }
 
 #[cfg(test)]

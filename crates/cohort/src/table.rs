@@ -120,7 +120,12 @@ pub fn to_csv(rows: &[Row]) -> String {
 /// infinite, is an error naming the file, the line and the column.
 pub fn read_csv(path: &Path) -> Result<Vec<Row>> {
     let bytes = std::fs::read(path).with_context(|| format!("{}: cannot read", path.display()))?;
-    let mut rdr = csv::ReaderBuilder::new().has_headers(false).from_reader(bytes.as_slice());
+    parse_csv(path, &bytes)
+}
+
+/// [`read_csv`] of a table held in memory; `path` names it in errors.
+pub fn parse_csv(path: &Path, bytes: &[u8]) -> Result<Vec<Row>> {
+    let mut rdr = csv::ReaderBuilder::new().has_headers(false).from_reader(bytes);
     let mut records = rdr.records();
     let header = records.next().transpose().with_context(|| format!("{}: not a CSV table", path.display()))?;
     if header.as_ref().map(|h| h.iter().collect::<Vec<_>>().join(",")) != Some(HEADER.to_string()) {
@@ -311,10 +316,7 @@ pub fn write_summaries(dir: &Path, rows: &[Row], robust_percentile: f64) -> Resu
         definitions: &'static str,
         methods: &'a [MethodSummary],
     }
-    write_json(
-        &dir.join("summary.json"),
-        &Doc { caution: CAUTION, definitions: DEFINITIONS, methods: &methods },
-    )?;
+    write_json(&dir.join("summary.json"), &Doc { caution: CAUTION, definitions: DEFINITIONS, methods: &methods })?;
     sinew_io::atomic::write_bytes_atomic(&dir.join("summary.md"), markdown(&methods).as_bytes())?;
     Ok(())
 }

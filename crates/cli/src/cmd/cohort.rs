@@ -12,7 +12,6 @@
 //! `score.json` parses; anything else is redone (every file is written atomically, so a
 //! killed run leaves only complete files and stray temporaries, which are removed).
 
-
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
@@ -20,16 +19,16 @@ use std::sync::Mutex;
 use anyhow::{bail, Context};
 use clap::{Args, Subcommand};
 
-pub use sinew_cohort::{all_pairs, manifest, table, Pair, Shard, Subject};
 use sinew_cohort::files::{
     collect_rows, complete_report, pair_name, read_record, read_runtimes, remove_stray_temporaries, PairRecord,
 };
+pub use sinew_cohort::{manifest, table, Pair, Shard, Subject};
 
 use crate::cmd::common;
 use crate::cmd::register::{ParamArgs, PresetArgs, RegisterArgs, UnitsArg};
 use crate::cmd::score::FieldFormat;
-use sinew_cohort::{FieldFormat as Format, PairFiles};
 use crate::ui;
+use sinew_cohort::{FieldFormat as Format, PairFiles};
 
 /// Arguments of `sinew cohort`.
 #[derive(Args, Debug, Clone)]
@@ -38,18 +37,9 @@ pub struct CohortArgs {
     /// `merge`: join the tables of shards.
     #[command(subcommand)]
     pub action: Option<CohortAction>,
-    /// Manifest of subjects: TOML (`[[subject]]` with id, image, labels, optional mask and
-    /// landmarks) or CSV (header `id,image,labels[,mask][,landmarks]`); paths relative to it.
-    #[arg(long, value_name = "FILE", conflicts_with = "all_pairs", required_unless_present = "all_pairs")]
-    pub manifest: Option<PathBuf>,
-    /// A folder of `<id>_image.nii.gz` + `<id>_labels.nii.gz` files (the layout of `sinew demo`);
-    /// every pair i<j of the ids in sorted order.
-    #[arg(long, value_name = "DIR")]
-    pub all_pairs: Option<PathBuf>,
-    /// Pair list: CSV with the header `fixed,moving` (subject ids), one pair a line, in either
-    /// direction; default: the manifest's `[[pair]]` tables, else every pair i<j.
-    #[arg(long, value_name = "CSV")]
-    pub pairs: Option<PathBuf>,
+    /// Subjects and pairs.
+    #[command(flatten)]
+    pub subjects: SubjectArgs,
     /// Output folder (created if needed; rerunning into it resumes).
     #[arg(long, short = 'o', value_name = "DIR", required = true)]
     pub out: Option<PathBuf>,
@@ -101,6 +91,34 @@ pub struct CohortArgs {
     /// No progress bar and no summary line.
     #[arg(long, short = 'q')]
     pub quiet: bool,
+}
+
+/// Where the subjects and pairs come from; shared by `sinew cohort` and `sinew tune`.
+#[derive(Args, Debug, Clone, Default)]
+pub struct SubjectArgs {
+    /// Manifest of subjects: TOML (`[[subject]]` with id, image, labels, optional mask and
+    /// landmarks) or CSV (header `id,image,labels[,mask][,landmarks]`); paths relative to it.
+    #[arg(long, value_name = "FILE", conflicts_with = "all_pairs", required_unless_present = "all_pairs")]
+    pub manifest: Option<PathBuf>,
+    /// A folder of `<id>_image.nii.gz` + `<id>_labels.nii.gz` files (the layout of `sinew demo`);
+    /// every pair i<j of the ids in sorted order.
+    #[arg(long, value_name = "DIR")]
+    pub all_pairs: Option<PathBuf>,
+    /// Pair list: CSV with the header `fixed,moving` (subject ids), one pair a line, in either
+    /// direction; default: the manifest's `[[pair]]` tables, else every pair i<j.
+    #[arg(long, value_name = "CSV")]
+    pub pairs: Option<PathBuf>,
+}
+
+impl SubjectArgs {
+    /// The subjects and pairs, as the library takes them.
+    pub fn source(&self) -> sinew_cohort::Source {
+        sinew_cohort::Source {
+            manifest: self.manifest.clone(),
+            all_pairs: self.all_pairs.clone(),
+            pairs: self.pairs.clone(),
+        }
+    }
 }
 
 /// Subcommands of `sinew cohort`.
@@ -155,26 +173,9 @@ pub fn run(args: CohortArgs) -> anyhow::Result<()> {
         return merge(m);
     }
     let out = args.out.clone().context("--out is required")?;
-    let (subjects, listed, names_dir) = match (&args.manifest, &args.all_pairs) {
-        (Some(m), _) => {
-            let (subjects, listed) = manifest::read_manifest(m)?;
-            (subjects, listed.map(|l| (l, m.clone())), m.parent().unwrap_or(Path::new(".")).to_path_buf())
-        }
-        (None, Some(d)) => (manifest::scan_folder(d)?, None, d.clone()),
-        (None, None) => bail!("give --manifest FILE or --all-pairs DIR"),
-    };
-    let names = sinew_cohort::label_names(&names_dir)?;
-    let listed = match (&args.pairs, listed) {
-        (Some(p), Some((_, m))) => {
-            bail!("{}: lists [[pair]] tables and --pairs {} was given too; keep one", m.display(), p.display())
-        }
-        (Some(p), None) => Some((manifest::read_pair_list(p)?, p.clone())),
-        (None, l) => l,
-    };
-    let every = match &listed {
-        Some((named, origin)) => manifest::resolve_pairs(named, &subjects, origin)?,
-        None => all_pairs(subjects.len()),
-    };
+    let cohort = args.subjects.source().load()?;
+    let names = sinew_cohort::label_names(&cohort.dir)?;
+    let (subjects, every) = (cohort.subjects, cohort.pairs);
     let pairs: Vec<Pair> = every.into_iter().filter(|p| args.shard.map_or(true, |s| s.contains(p.index))).collect();
     let runtimes = match &args.runtimes {
         Some(p) => read_runtimes(p, &subjects)?,
@@ -315,7 +316,7 @@ fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> Reg
 /// The cohort's `labels.json` (beside the manifest, or in the --all-pairs folder) when there
 /// is one: the pairs' QC sheets name their labels from it.
 fn names_file(args: &CohortArgs) -> Option<PathBuf> {
-    let dir = match (&args.manifest, &args.all_pairs) {
+    let dir = match (&args.subjects.manifest, &args.subjects.all_pairs) {
         (Some(m), _) => m.parent().unwrap_or(Path::new(".")).to_path_buf(),
         (None, Some(d)) => d.clone(),
         (None, None) => return None,

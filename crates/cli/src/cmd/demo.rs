@@ -18,7 +18,7 @@ use anyhow::{bail, Context, Result};
 use serde::{Deserialize, Serialize};
 use sinew_phantom::{generate, PhantomParams, LABELS};
 
-use crate::cmd::cohort::CohortArgs;
+use crate::cmd::cohort::{CohortArgs, SubjectArgs};
 use crate::cmd::register::{PresetArgs, ScanArgs};
 use crate::cmd::report::ReportArgs;
 use crate::cmd::score::FieldFormat;
@@ -150,9 +150,7 @@ pub fn run(args: DemoArgs) -> Result<()> {
     // `sinew report`, called directly.
     let cohort = CohortArgs {
         action: None,
-        manifest: None,
-        all_pairs: Some(args.out.clone()),
-        pairs: None,
+        subjects: SubjectArgs { manifest: None, all_pairs: Some(args.out.clone()), pairs: None },
         out: Some(results.clone()),
         params: PresetArgs { preset: args.preset.clone(), config: args.config.clone(), iterations: None },
         diffeomorphic: false,

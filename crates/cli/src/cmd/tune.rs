@@ -32,7 +32,7 @@ use serde::{Deserialize, Serialize};
 use sinew_solve::RegParams;
 
 use crate::cmd::cohort::manifest::{self, NamedPair};
-use crate::cmd::cohort::{all_pairs, Pair, Shard, Subject};
+use crate::cmd::cohort::{Pair, Shard, Subject, SubjectArgs};
 use crate::cmd::common;
 use crate::cmd::register::{ParamArgs, PresetArgs, ScanArgs};
 use crate::ui;
@@ -42,18 +42,9 @@ use search::{Budget, Outcome, Planned, Search};
 #[derive(Args, Debug, Clone)]
 #[command(after_long_help = TUNE_HELP)]
 pub struct TuneArgs {
-    /// Manifest of labelled subjects, as for `sinew cohort` (TOML `[[subject]]` tables or CSV
-    /// `id,image,labels[,mask][,landmarks]`).
-    #[arg(long, value_name = "FILE", conflicts_with = "all_pairs", required_unless_present = "all_pairs")]
-    pub manifest: Option<PathBuf>,
-    /// A folder of `<id>_image.nii.gz` + `<id>_labels.nii.gz` files (the layout of `sinew
-    /// demo`); every pair i<j of the ids in sorted order.
-    #[arg(long, value_name = "DIR")]
-    pub all_pairs: Option<PathBuf>,
-    /// Pair list: CSV with the header `fixed,moving` (subject ids); default: the manifest's
-    /// `[[pair]]` tables, else every pair i<j.
-    #[arg(long, value_name = "CSV")]
-    pub pairs: Option<PathBuf>,
+    /// Labelled subjects and pairs (as for `sinew cohort`).
+    #[command(flatten)]
+    pub subjects: SubjectArgs,
     /// Share of the pairs held out (never tuned on; the final figures are theirs), drawn at
     /// random with --seed; at least one pair on each side.
     #[arg(long, value_name = "FRACTION", default_value_t = 0.3, value_parser = fraction, conflicts_with = "holdout_pairs")]
@@ -348,25 +339,8 @@ pub fn run(args: TuneArgs) -> anyhow::Result<()> {
     let base = base_params(&args)?;
     args.scan.options()?;
     args.scan.nan_policy()?;
-    let (subjects, listed) = match (&args.manifest, &args.all_pairs) {
-        (Some(m), _) => {
-            let (subjects, listed) = manifest::read_manifest(m)?;
-            (subjects, listed.map(|l| (l, m.clone())))
-        }
-        (None, Some(d)) => (manifest::scan_folder(d)?, None),
-        (None, None) => bail!("give --manifest FILE or --all-pairs DIR"),
-    };
-    let listed = match (&args.pairs, listed) {
-        (Some(p), Some((_, m))) => {
-            bail!("{}: lists [[pair]] tables and --pairs {} was given too; keep one", m.display(), p.display())
-        }
-        (Some(p), None) => Some((manifest::read_pair_list(p)?, p.clone())),
-        (None, l) => l,
-    };
-    let every = match &listed {
-        Some((named, origin)) => manifest::resolve_pairs(named, &subjects, origin)?,
-        None => all_pairs(subjects.len()),
-    };
+    let cohort = args.subjects.source().load()?;
+    let (subjects, every) = (cohort.subjects, cohort.pairs);
     let (tuning, held, rule) = split(&args, &every, &subjects)?;
     let budget = Budget { max_folding_pct: args.max_folding, time_per_pair_s: args.time_budget };
     let ctx = Ctx { subjects: &subjects, scan: &args.scan, budget, cache: Default::default() };
