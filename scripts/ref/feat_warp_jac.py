@@ -33,4 +33,7 @@ def jacobian_det(field):
     for a in range(3):
         for b in range(3):
             jac[..., a, b] = np.gradient(u[a], axis=b, edge_order=1) + (1.0 if a == b else 0.0)
-    return np.linalg.det(jac)
+    # numpy.linalg.det goes through LAPACK, whose last bits depend on the CPU's kernels
+    # (seen: 8.9e-16 between two x86-64 machines), so CI's drift check would fail on another
+    # machine. Stored rounded to float32 (the Rust test's tolerance is 1e-4), kept as float64.
+    return np.linalg.det(jac).astype(np.float32).astype(np.float64)
