@@ -362,8 +362,12 @@ pub fn run(args: TuneArgs) -> anyhow::Result<()> {
         grid: search.dims.iter().map(|d| (d.name, d.values.clone())).collect(),
     };
     check_settings(&out.join("tune.json"), &settings)?;
-    for d in [out.clone(), out.join("trials"), out.join("holdout")] {
-        remove_stray_temporaries(&d, args.shard.is_none());
+    // Temporaries of interrupted atomic writes: with shards running side by side only this
+    // process's own could be removed safely, so shards leave them.
+    if args.shard.is_none() {
+        for d in [out.clone(), out.join("trials"), out.join("holdout")] {
+            sinew_cohort::files::remove_stray_temporaries(&d);
+        }
     }
     let threads = args.threads;
     if threads == Some(0) {
@@ -777,22 +781,6 @@ fn check_settings(path: &Path, settings: &Settings) -> anyhow::Result<()> {
         return Ok(());
     }
     Ok(common::write_json(path, settings)?)
-}
-
-/// Removes temporaries (`.<name>.tmp-…`) of interrupted atomic writes. With shards running
-/// side by side only this process's own could be removed safely, so shards leave them.
-fn remove_stray_temporaries(dir: &Path, alone: bool) {
-    if !alone {
-        return;
-    }
-    if let Ok(entries) = std::fs::read_dir(dir) {
-        for e in entries.flatten() {
-            let name = e.file_name().to_string_lossy().into_owned();
-            if name.starts_with('.') && name.contains(".tmp-") {
-                let _ = std::fs::remove_file(e.path());
-            }
-        }
-    }
 }
 
 fn trial_line(search: &Search, e: &Evaluation, budget: Budget, secs: f64) -> String {
