@@ -23,10 +23,9 @@
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
-use std::time::Instant;
 
 use sinew_grid::{resample, Affine, Border, Grid, Image};
-use sinew_testkit::{load_average, median, release_binary, KnownWarp};
+use sinew_testkit::{load_average, median, release_binary, timed, KnownWarp};
 
 /// The scan resampled to `shape` over its own field of view, then labelled with `spacing`
 /// (directions kept): a body scaled to that spacing.
@@ -132,21 +131,21 @@ fn main() {
         let (mut wall, mut reg, mut write, mut peak, mut e) = (vec![], vec![], vec![], vec![], 0.0);
         for run in 0..runs {
             let _ = std::fs::remove_dir_all(&run_dir);
-            let t = Instant::now();
-            let st = Command::new(&bin)
-                .args(["register", "-q", "-j", &threads, "--out-format", format, "-f"])
-                .arg(&f)
-                .arg("-m")
-                .arg(&m)
-                .arg("--fixed-labels")
-                .arg(&fl)
-                .arg("--moving-labels")
-                .arg(&ml)
-                .arg("-o")
-                .arg(&run_dir)
-                .status()
-                .expect("sinew runs");
-            let w = t.elapsed().as_secs_f64();
+            let (st, w) = timed(|| {
+                Command::new(&bin)
+                    .args(["register", "-q", "-j", &threads, "--out-format", format, "-f"])
+                    .arg(&f)
+                    .arg("-m")
+                    .arg(&m)
+                    .arg("--fixed-labels")
+                    .arg(&fl)
+                    .arg("--moving-labels")
+                    .arg(&ml)
+                    .arg("-o")
+                    .arg(&run_dir)
+                    .status()
+                    .expect("sinew runs")
+            });
             assert!(st.success(), "sinew register failed on {name}");
             let report: serde_json::Value =
                 serde_json::from_slice(&std::fs::read(run_dir.join("report.json")).unwrap()).unwrap();

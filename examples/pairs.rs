@@ -4,10 +4,9 @@
 //! `i`) and prints Dice over the 10 labels, folding and SDlogJ per pair and their means.
 //! KEY is any field of the registration parameters (TOML values), e.g. `lambda=0.05`.
 
-use std::time::Instant;
-
 use sinew_phantom::{generate, PhantomParams, LABELS};
 use sinew_solve::{register, RegParams};
+use sinew_testkit::timed;
 
 fn main() {
     let mut seed = 2024u64;
@@ -52,9 +51,7 @@ fn main() {
                 break 'outer;
             }
             let (f, m) = (&subjects[i], &subjects[j]);
-            let t = Instant::now();
-            let reg = register(&f.image, &m.image, None, &params, &mut |_| {}).unwrap();
-            let secs = t.elapsed().as_secs_f64();
+            let (reg, secs) = timed(|| register(&f.image, &m.image, None, &params, &mut |_| {}).unwrap());
             let warped = sinew_transform::warp_labels(&m.labels, &reg.field).unwrap();
             let d = sinew_score::dice_per_label(&f.labels, &warped, &labels).unwrap();
             let d0 = sinew_score::dice_per_label(&f.labels, &m.labels, &labels).unwrap();

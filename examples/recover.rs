@@ -3,11 +3,9 @@
 //! field of the registration parameters (TOML values), e.g. `lambda=0.5 iterations=[80,60,40]`.
 //! Prints the mean and 95th-percentile endpoint error over the body and the time per level.
 
-use std::time::Instant;
-
 use sinew_phantom::{generate, PhantomParams};
 use sinew_solve::{register, RegParams};
-use sinew_testkit::{endpoint_error, endpoint_errors, KnownWarp};
+use sinew_testkit::{endpoint_error, endpoint_errors, timed, KnownWarp};
 
 fn main() {
     let mut args = std::env::args().skip(1);
@@ -22,9 +20,7 @@ fn main() {
     params = table.try_into().expect("valid parameters");
     let subject = generate(11, 0, &PhantomParams::default());
     let case = KnownWarp::new(subject.image, max_mm, 0.0);
-    let t = Instant::now();
-    let reg = register(&case.fixed, &case.moving, None, &params, &mut |_| {}).unwrap();
-    let secs = t.elapsed().as_secs_f64();
+    let (reg, secs) = timed(|| register(&case.fixed, &case.moving, None, &params, &mut |_| {}).unwrap());
     let labels = case.on_fixed(&subject.labels);
     let mut per_label = std::collections::BTreeMap::<u16, (f64, usize)>::new();
     for (&l, e) in labels.as_slice().iter().zip(endpoint_errors(&reg.field, &case.truth)) {

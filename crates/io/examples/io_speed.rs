@@ -1,11 +1,10 @@
 //! Times writing and reading a 144×112×192 image and displacement field (plain and gzip).
 //! Run: `cargo run -p sinew-io --release --example io_speed [DIR]`.
 
-use std::time::Instant;
-
 use ndarray::Array3;
 use sinew_grid::{Field, Grid, Image};
 use sinew_io::*;
+use sinew_testkit::timed;
 
 fn main() -> Result<(), IoError> {
     let dir = std::env::args().nth(1).map(std::path::PathBuf::from).unwrap_or_else(std::env::temp_dir);
@@ -21,29 +20,19 @@ fn main() -> Result<(), IoError> {
     }
     for ext in ["nii", "nii.gz"] {
         let p = dir.join(format!("sinew_io_speed_img.{ext}"));
-        let t = Instant::now();
-        write_image(&p, &img)?;
-        let w = t.elapsed();
-        let t = Instant::now();
-        let back = read_image(&p)?;
-        println!(
-            "image {ext:7} write {:6.1} ms  read {:6.1} ms",
-            w.as_secs_f64() * 1e3,
-            t.elapsed().as_secs_f64() * 1e3
-        );
+        let (written, w) = timed(|| write_image(&p, &img));
+        written?;
+        let (back, r) = timed(|| read_image(&p));
+        let back = back?;
+        println!("image {ext:7} write {:6.1} ms  read {:6.1} ms", w * 1e3, r * 1e3);
         assert_eq!(back.data, img.data);
         std::fs::remove_file(&p).ok();
         let p = dir.join(format!("sinew_io_speed_field.{ext}"));
-        let t = Instant::now();
-        write_field(&p, &field, FieldUnits::Mm)?;
-        let w = t.elapsed();
-        let t = Instant::now();
-        read_field(&p, FieldReadOptions::default())?;
-        println!(
-            "field {ext:7} write {:6.1} ms  read {:6.1} ms",
-            w.as_secs_f64() * 1e3,
-            t.elapsed().as_secs_f64() * 1e3
-        );
+        let (written, w) = timed(|| write_field(&p, &field, FieldUnits::Mm));
+        written?;
+        let (read, r) = timed(|| read_field(&p, FieldReadOptions::default()));
+        read?;
+        println!("field {ext:7} write {:6.1} ms  read {:6.1} ms", w * 1e3, r * 1e3);
         std::fs::remove_file(&p).ok();
     }
     Ok(())

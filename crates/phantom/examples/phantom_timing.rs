@@ -1,28 +1,24 @@
 //! Times the generation of one default-size demo subject (144 × 112 × 192 voxels of 2 mm).
 //!
 //! `cargo run --release -p sinew-phantom --example phantom_timing` prints the median of three
-//! runs and the label volumes of the subject.
-
-use std::time::Instant;
+//! runs (after one warm-up) and the label volumes of the subject.
 
 use sinew_phantom::{generate, PhantomParams, LABELS};
+use sinew_testkit::time_runs;
 
 fn main() {
     let p = PhantomParams::default();
     let threads = rayon::current_num_threads();
-    let mut times = Vec::new();
     let mut last = None;
-    for run in 0..3 {
-        let t = Instant::now();
-        let s = generate(7, run, &p);
-        times.push(t.elapsed().as_secs_f64());
-        last = Some(s);
-    }
-    times.sort_by(|a, b| a.total_cmp(b));
+    let mut run = 0;
+    let (median, times) = time_runs(3, || {
+        last = Some(generate(7, run, &p));
+        run += 1;
+    });
     let s = last.expect("three runs");
     println!(
-        "{:?} voxels at {:?} mm, {threads} threads: median {:.3} s per subject (runs {:?})",
-        p.shape, p.spacing, times[1], times
+        "{:?} voxels at {:?} mm, {threads} threads: median {median:.3} s per subject (runs {times:?})",
+        p.shape, p.spacing
     );
     let ml = p.spacing.iter().product::<f64>() / 1000.0;
     for (l, n) in s.labels.label_counts() {

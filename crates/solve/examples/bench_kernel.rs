@@ -1,9 +1,9 @@
 //! Times one evaluation of the fused objective kernel (12 channels) at two sizes:
-//! `cargo run -p sinew-solve --release --example bench_kernel`. Prints the median of 7 runs.
-
-use std::time::Instant;
+//! `cargo run -p sinew-solve --release --example bench_kernel`. Prints the median of 7 runs
+//! after one warm-up.
 
 use sinew_solve::kernel::Problem;
+use sinew_testkit::time_runs;
 
 fn main() {
     let small_only = std::env::args().any(|a| a == "--small");
@@ -27,14 +27,9 @@ fn main() {
             mask: None,
             lambda: 0.1,
         };
-        let mut times = Vec::new();
-        for _ in 0..7 {
-            let t = Instant::now();
+        let (med, _) = time_runs(7, || {
             std::hint::black_box(p.evaluate(&u, &mut g, &mut sums));
-            times.push(t.elapsed().as_secs_f64());
-        }
-        times.sort_by(|a, b| a.partial_cmp(b).unwrap());
-        let med = times[3];
+        });
         println!(
             "{shape:?}: {:.1} ms per evaluation, {:.1} ns per voxel ({} threads)",
             med * 1e3,

@@ -30,17 +30,18 @@ pub fn load_average() -> String {
         .map_or_else(|_| "?".into(), |s| s.split_whitespace().take(3).collect::<Vec<_>>().join(" "))
 }
 
+/// Runs `f` once: its result and its wall time in seconds.
+pub fn timed<R>(f: impl FnOnce() -> R) -> (R, f64) {
+    let t = std::time::Instant::now();
+    let r = f();
+    (r, t.elapsed().as_secs_f64())
+}
+
 /// Times `runs` calls of `f` after one untimed warm-up call: the median in seconds (`median`)
 /// and every run's seconds in the order they ran.
 pub fn time_runs(runs: usize, mut f: impl FnMut()) -> (f64, Vec<f64>) {
     f();
-    let times: Vec<f64> = (0..runs)
-        .map(|_| {
-            let t = std::time::Instant::now();
-            f();
-            t.elapsed().as_secs_f64()
-        })
-        .collect();
+    let times: Vec<f64> = (0..runs).map(|_| timed(&mut f).1).collect();
     (median(&mut times.clone()), times)
 }
 
