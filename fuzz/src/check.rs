@@ -71,11 +71,11 @@ fn check_err(what: &str, e: &IoError) {
 /// Runs every reader on `bytes` and asserts the properties above; returns how many of the four
 /// readers accepted the input.
 pub fn check(bytes: &[u8]) -> usize {
-    let name = Path::new(NAME);
+    let src = sinew_io::Nifti::Bytes { name: Path::new(NAME), bytes };
     let opts = ReadOptions { max_bytes: MAX_BYTES };
     reset_peak();
     let mut accepted = 0;
-    let header = sinew_io::read_header_from_bytes(name, bytes);
+    let header = sinew_io::read_header_of(src);
     match &header {
         Ok(h) => {
             accepted += 1;
@@ -90,7 +90,7 @@ pub fn check(bytes: &[u8]) -> usize {
         }
         Err(e) => check_err("read_header", e),
     }
-    match sinew_io::read_image_from_bytes(name, bytes, &opts) {
+    match sinew_io::read_image_of(src, &opts) {
         Ok(img) => {
             accepted += 1;
             let h = header.as_ref().expect("image read but header rejected");
@@ -99,7 +99,7 @@ pub fn check(bytes: &[u8]) -> usize {
         }
         Err(e) => check_err("read_image", &e),
     }
-    match sinew_io::read_labels_from_bytes(name, bytes, &opts) {
+    match sinew_io::read_labels_of(src, &opts) {
         Ok(lab) => {
             accepted += 1;
             let h = header.as_ref().expect("labels read but header rejected");
@@ -107,7 +107,7 @@ pub fn check(bytes: &[u8]) -> usize {
         }
         Err(e) => check_err("read_labels", &e),
     }
-    match sinew_io::read_field_from_bytes(name, bytes, FieldReadOptions { units: None, read: opts }) {
+    match sinew_io::read_field_of(src, FieldReadOptions { units: None, read: opts }) {
         Ok((field, _)) => {
             accepted += 1;
             let h = header.as_ref().expect("field read but header rejected");

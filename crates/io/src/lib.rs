@@ -40,8 +40,8 @@ pub use error::IoError;
 pub use header::{affine_to_qform, qform_affine, AffineSource, DataType, HeaderInfo, INTENT_DISPVECT};
 pub use npy::{f16_to_f32, read_npy_array, read_npy_field, read_npz_array, write_npy_field, NpyArray, NpyLayout};
 pub use read::{
-    read_field, read_field_from_bytes, read_header, read_header_from_bytes, read_image, read_image_from_bytes,
-    read_image_with, read_labels, read_labels_from_bytes, read_labels_with, read_values, FieldReadOptions, ReadOptions,
+    read_field, read_field_of, read_header, read_header_of, read_image, read_image_of, read_labels, read_labels_of,
+    read_values, FieldReadOptions, Nifti, ReadOptions,
 };
 pub use write::{
     field_plane_writer, image_plane_writer, labels_plane_writer, write_field, write_image, write_labels, FieldUnits,

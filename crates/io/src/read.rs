@@ -66,18 +66,33 @@ fn open(path: &Path) -> Result<Opened<'static>, IoError> {
     detect_gzip(path, BufReader::with_capacity(1 << 16, file), len)
 }
 
-/// Where the bytes of a NIfTI file come from: a file, or memory (named for error messages).
-#[derive(Clone, Copy)]
-enum Source<'a> {
-    File,
-    Bytes(&'a [u8]),
+/// Where the bytes of a NIfTI-1 file (plain or gzip) come from: a file, or memory.
+#[derive(Clone, Copy, Debug)]
+pub enum Nifti<'a> {
+    /// The file at this path.
+    File(&'a Path),
+    /// The bytes of a file held in memory; `name` is only used in error messages.
+    Bytes {
+        /// The name errors give.
+        name: &'a Path,
+        /// The file's bytes.
+        bytes: &'a [u8],
+    },
 }
 
-impl<'a> Source<'a> {
-    fn open(self, path: &Path) -> Result<Opened<'a>, IoError> {
+impl<'a> Nifti<'a> {
+    /// The path errors name.
+    fn path(self) -> &'a Path {
         match self {
-            Source::File => open(path),
-            Source::Bytes(b) => detect_gzip(path, b, b.len() as u64),
+            Nifti::File(p) => p,
+            Nifti::Bytes { name, .. } => name,
+        }
+    }
+
+    fn open(self) -> Result<Opened<'a>, IoError> {
+        match self {
+            Nifti::File(path) => open(path),
+            Nifti::Bytes { name, bytes } => detect_gzip(name, bytes, bytes.len() as u64),
         }
     }
 }
@@ -114,20 +129,19 @@ fn read_header_from(path: &Path, r: &mut dyn Read, gz: bool) -> Result<HeaderInf
 
 /// Reads and validates the header of a NIfTI-1 file (plain or gzip).
 pub fn read_header(path: &Path) -> Result<HeaderInfo, IoError> {
-    let (mut r, gz, _) = open(path)?;
-    read_header_from(path, &mut r, gz)
+    read_header_of(Nifti::File(path))
 }
 
-/// [`read_header`] of the bytes of a NIfTI-1 file held in memory (plain or gzip); `name` is
-/// only used in error messages.
-pub fn read_header_from_bytes(name: &Path, bytes: &[u8]) -> Result<HeaderInfo, IoError> {
-    let (mut r, gz, _) = Source::Bytes(bytes).open(name)?;
-    read_header_from(name, &mut r, gz)
+/// [`read_header`] of a file or of bytes in memory.
+pub fn read_header_of(src: Nifti<'_>) -> Result<HeaderInfo, IoError> {
+    let (mut r, gz, _) = src.open()?;
+    read_header_from(src.path(), &mut r, gz)
 }
 
 /// The header and the raw voxel bytes, size-checked before allocation.
-fn read_raw(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<u8>), IoError> {
-    let (mut r, gz, file_len) = src.open(path)?;
+fn read_raw(src: Nifti<'_>, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<u8>), IoError> {
+    let path = src.path();
+    let (mut r, gz, file_len) = src.open()?;
     let info = read_header_from(path, &mut r, gz)?;
     let want = info.data_bytes;
     if want > opts.max_bytes {
@@ -279,7 +293,7 @@ fn single_volume(path: &Path, info: &HeaderInfo) -> Result<(), IoError> {
 /// Every voxel value of a NIfTI-1 file, scaled, in file order (i fastest), with its header;
 /// any dimensionality. For summaries that do not need the 3-D layout.
 pub fn read_values(path: &Path, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<f32>), IoError> {
-    let (info, bytes) = read_raw(path, Source::File, opts)?;
+    let (info, bytes) = read_raw(Nifti::File(path), opts)?;
     let v = scaled_f32(&info, &bytes);
     Ok((info, v))
 }
@@ -288,22 +302,13 @@ pub fn read_values(path: &Path, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<f
 /// when the slope is non-zero and finite. NaN/inf voxels are kept (see
 /// [`Image::count_non_finite`]). Default limits.
 pub fn read_image(path: &Path) -> Result<Image, IoError> {
-    read_image_with(path, &ReadOptions::default())
+    read_image_of(Nifti::File(path), &ReadOptions::default())
 }
 
-/// [`read_image`] with explicit limits.
-pub fn read_image_with(path: &Path, opts: &ReadOptions) -> Result<Image, IoError> {
-    image_from(path, Source::File, opts)
-}
-
-/// [`read_image_with`] of the bytes of a NIfTI-1 file held in memory (plain or gzip); `name`
-/// is only used in error messages.
-pub fn read_image_from_bytes(name: &Path, bytes: &[u8], opts: &ReadOptions) -> Result<Image, IoError> {
-    image_from(name, Source::Bytes(bytes), opts)
-}
-
-fn image_from(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<Image, IoError> {
-    let (info, bytes) = read_raw(path, src, opts)?;
+/// [`read_image`] of a file or of bytes in memory, with explicit limits.
+pub fn read_image_of(src: Nifti<'_>, opts: &ReadOptions) -> Result<Image, IoError> {
+    let path = src.path();
+    let (info, bytes) = read_raw(src, opts)?;
     single_volume(path, &info)?;
     let arr = Array3::from_shape_vec(info.grid.shape(), scaled_f32_memory_order(&info, &bytes, 1))
         .expect("decoded length matches the header");
@@ -314,22 +319,13 @@ fn image_from(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<Image,
 /// Reads a label map: values (after scaling, if any) must be whole numbers in 0..=65535;
 /// a float file whose values are all integral is accepted. Default limits.
 pub fn read_labels(path: &Path) -> Result<LabelMap, IoError> {
-    read_labels_with(path, &ReadOptions::default())
+    read_labels_of(Nifti::File(path), &ReadOptions::default())
 }
 
-/// [`read_labels`] with explicit limits.
-pub fn read_labels_with(path: &Path, opts: &ReadOptions) -> Result<LabelMap, IoError> {
-    labels_from(path, Source::File, opts)
-}
-
-/// [`read_labels_with`] of the bytes of a NIfTI-1 file held in memory (plain or gzip); `name`
-/// is only used in error messages.
-pub fn read_labels_from_bytes(name: &Path, bytes: &[u8], opts: &ReadOptions) -> Result<LabelMap, IoError> {
-    labels_from(name, Source::Bytes(bytes), opts)
-}
-
-fn labels_from(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<LabelMap, IoError> {
-    let (info, bytes) = read_raw(path, src, opts)?;
+/// [`read_labels`] of a file or of bytes in memory, with explicit limits.
+pub fn read_labels_of(src: Nifti<'_>, opts: &ReadOptions) -> Result<LabelMap, IoError> {
+    let path = src.path();
+    let (info, bytes) = read_raw(src, opts)?;
     single_volume(path, &info)?;
     let scale = info.scaling().unwrap_or((1.0, 0.0));
     let mut problem: Option<String> = None;
@@ -358,21 +354,13 @@ fn labels_from(path: &Path, src: Source<'_>, opts: &ReadOptions) -> Result<Label
 /// Units: those recorded by sinew in `intent_name` if present, else `opts.units`, else mm.
 /// Returns the field (in voxels along i, j, k, as in memory) and the units that were used.
 pub fn read_field(path: &Path, opts: FieldReadOptions) -> Result<(Field, FieldUnits), IoError> {
-    field_from(path, Source::File, opts)
+    read_field_of(Nifti::File(path), opts)
 }
 
-/// [`read_field`] of the bytes of a NIfTI-1 file held in memory (plain or gzip); `name` is
-/// only used in error messages.
-pub fn read_field_from_bytes(
-    name: &Path,
-    bytes: &[u8],
-    opts: FieldReadOptions,
-) -> Result<(Field, FieldUnits), IoError> {
-    field_from(name, Source::Bytes(bytes), opts)
-}
-
-fn field_from(path: &Path, src: Source<'_>, opts: FieldReadOptions) -> Result<(Field, FieldUnits), IoError> {
-    let (info, bytes) = read_raw(path, src, &opts.read)?;
+/// [`read_field`] of a file or of bytes in memory.
+pub fn read_field_of(src: Nifti<'_>, opts: FieldReadOptions) -> Result<(Field, FieldUnits), IoError> {
+    let path = src.path();
+    let (info, bytes) = read_raw(src, &opts.read)?;
     let d = &info.dims;
     let ok = (d.len() == 5 && d[3] == 1 && d[4] == 3) || (d.len() == 4 && d[3] == 3);
     if !ok {

@@ -152,7 +152,7 @@ fn huge_claims_are_refused_before_allocating() {
     expect_err(read_image(&p), &p, "truncated");
     // A small explicit limit.
     let p = valid(d, "ok.nii");
-    expect_err(read_image_with(&p, &ReadOptions { max_bytes: 100 }), &p, "limit of 100 bytes");
+    expect_err(read_image_of(Nifti::File(&p), &ReadOptions { max_bytes: 100 }), &p, "limit of 100 bytes");
 }
 
 #[test]
