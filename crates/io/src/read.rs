@@ -172,25 +172,34 @@ fn read_raw(src: Nifti<'_>, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<u8>),
     Ok((info, data))
 }
 
+/// Evaluates `$body` with the type alias `$t` naming the Rust type of the voxels of datatype
+/// `$dt` (one monomorphised copy of the body per datatype).
+macro_rules! for_datatype {
+    ($dt:expr, $t:ident => $body:expr) => {
+        for_datatype!(@arms $dt, $t, $body; U8 u8, I8 i8, U16 u16, I16 i16, U32 u32, I32 i32, F32 f32, F64 f64)
+    };
+    (@arms $dt:expr, $t:ident, $body:expr; $($variant:ident $ty:ty),*) => {
+        match $dt {
+            $(DataType::$variant => {
+                type $t = $ty;
+                $body
+            })*
+        }
+    };
+}
+
+/// A voxel value as f64 (exact for every datatype read here).
+fn widen(v: impl Into<f64>) -> f64 {
+    v.into()
+}
+
 /// Decodes raw bytes to `T` through `f(value as f64)`, in file order.
 fn decode<T>(bytes: &[u8], dt: DataType, little: bool, f: impl FnMut(f64) -> T) -> Vec<T> {
-    macro_rules! go {
-        ($t:ty) => {{
-            const N: usize = std::mem::size_of::<$t>();
-            let conv = if little { <$t>::from_le_bytes } else { <$t>::from_be_bytes };
-            bytes.chunks_exact(N).map(|c| conv(c.try_into().expect("chunk of N bytes")) as f64).map(f).collect()
-        }};
-    }
-    match dt {
-        DataType::U8 => go!(u8),
-        DataType::I8 => go!(i8),
-        DataType::U16 => go!(u16),
-        DataType::I16 => go!(i16),
-        DataType::U32 => go!(u32),
-        DataType::I32 => go!(i32),
-        DataType::F32 => go!(f32),
-        DataType::F64 => go!(f64),
-    }
+    for_datatype!(dt, V => {
+        const N: usize = std::mem::size_of::<V>();
+        let conv = if little { V::from_le_bytes } else { V::from_be_bytes };
+        bytes.chunks_exact(N).map(|c| widen(conv(c.try_into().expect("chunk of N bytes")))).map(f).collect()
+    })
 }
 
 /// Reorders file-order values (i fastest, then j, k, then volumes) into `(nvol, nx, ny, nz)`
@@ -252,42 +261,32 @@ fn scaled_f32_memory_order(info: &HeaderInfo, bytes: &[u8], nvol: usize) -> Vec<
     let shape = info.grid.shape();
     let (s, i) = info.scaling().unwrap_or((1.0, 0.0));
     let scaled = (s, i) != (1.0, 0.0);
-    macro_rules! go {
-        ($t:ty) => {{
-            const N: usize = std::mem::size_of::<$t>();
-            let conv = if info.little_endian { <$t>::from_le_bytes } else { <$t>::from_be_bytes };
-            let raw = |n: usize| conv(bytes[n * N..n * N + N].try_into().expect("N bytes")) as f64;
-            if scaled {
-                gather_memory_order(shape, nvol, |n| (s * raw(n) + i) as f32)
-            } else {
-                gather_memory_order(shape, nvol, |n| raw(n) as f32)
-            }
-        }};
-    }
-    match info.datatype {
-        DataType::U8 => go!(u8),
-        DataType::I8 => go!(i8),
-        DataType::U16 => go!(u16),
-        DataType::I16 => go!(i16),
-        DataType::U32 => go!(u32),
-        DataType::I32 => go!(i32),
-        DataType::F32 => go!(f32),
-        DataType::F64 => go!(f64),
-    }
+    for_datatype!(info.datatype, V => {
+        const N: usize = std::mem::size_of::<V>();
+        let conv = if info.little_endian { V::from_le_bytes } else { V::from_be_bytes };
+        let raw = |n: usize| widen(conv(bytes[n * N..n * N + N].try_into().expect("N bytes")));
+        if scaled {
+            gather_memory_order(shape, nvol, |n| (s * raw(n) + i) as f32)
+        } else {
+            gather_memory_order(shape, nvol, |n| raw(n) as f32)
+        }
+    })
 }
 
 fn grid_err(path: &Path) -> impl FnOnce(sinew_grid::GridError) -> IoError + '_ {
     move |cause| IoError::Grid { path: path.to_path_buf(), cause }
 }
 
-fn single_volume(path: &Path, info: &HeaderInfo) -> Result<(), IoError> {
+/// [`read_raw`] of a file that must hold a single 3-D volume.
+fn read_volume(src: Nifti<'_>, opts: &ReadOptions) -> Result<(HeaderInfo, Vec<u8>), IoError> {
+    let (info, bytes) = read_raw(src, opts)?;
     if info.n_extra() != 1 {
         return Err(IoError::WrongShape {
-            path: path.to_path_buf(),
+            path: src.path().to_path_buf(),
             reason: format!("dims {:?} hold {} volumes; expected a single 3-D volume", info.dims, info.n_extra()),
         });
     }
-    Ok(())
+    Ok((info, bytes))
 }
 
 /// Every voxel value of a NIfTI-1 file, scaled, in file order (i fastest), with its header;
@@ -307,13 +306,11 @@ pub fn read_image(path: &Path) -> Result<Image, IoError> {
 
 /// [`read_image`] of a file or of bytes in memory, with explicit limits.
 pub fn read_image_of(src: Nifti<'_>, opts: &ReadOptions) -> Result<Image, IoError> {
-    let path = src.path();
-    let (info, bytes) = read_raw(src, opts)?;
-    single_volume(path, &info)?;
+    let (info, bytes) = read_volume(src, opts)?;
     let arr = Array3::from_shape_vec(info.grid.shape(), scaled_f32_memory_order(&info, &bytes, 1))
         .expect("decoded length matches the header");
     drop(bytes);
-    Volume::new(info.grid, arr).map_err(grid_err(path))
+    Volume::new(info.grid, arr).map_err(grid_err(src.path()))
 }
 
 /// Reads a label map: values (after scaling, if any) must be whole numbers in 0..=65535;
@@ -324,9 +321,7 @@ pub fn read_labels(path: &Path) -> Result<LabelMap, IoError> {
 
 /// [`read_labels`] of a file or of bytes in memory, with explicit limits.
 pub fn read_labels_of(src: Nifti<'_>, opts: &ReadOptions) -> Result<LabelMap, IoError> {
-    let path = src.path();
-    let (info, bytes) = read_raw(src, opts)?;
-    single_volume(path, &info)?;
+    let (info, bytes) = read_volume(src, opts)?;
     let scale = info.scaling().unwrap_or((1.0, 0.0));
     let mut problem: Option<String> = None;
     let values = decode(&bytes, info.datatype, info.little_endian, |raw| {
@@ -343,10 +338,10 @@ pub fn read_labels_of(src: Nifti<'_>, opts: &ReadOptions) -> Result<LabelMap, Io
         v.clamp(0.0, 65535.0) as u16
     });
     if let Some(reason) = problem {
-        return Err(IoError::BadLabels { path: path.to_path_buf(), reason });
+        return Err(IoError::BadLabels { path: src.path().to_path_buf(), reason });
     }
     let arr: Array3<u16> = to_memory_order(values, info.grid.shape(), 1).index_axis_move(Axis(0), 0);
-    Volume::new(info.grid, arr).map_err(grid_err(path))
+    Volume::new(info.grid, arr).map_err(grid_err(src.path()))
 }
 
 /// Reads a displacement field of shape `(nx, ny, nz, 1, 3)` or `(nx, ny, nz, 3)`.
