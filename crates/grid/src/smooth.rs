@@ -90,7 +90,9 @@ fn rows_weighted_sum(out: &mut [f32], src: &[f32], rows: usize, len: usize, k: &
 }
 
 /// Convolves the contiguous `data` with `k`, using `line` (length `data.len() + 2r`) as the
-/// edge-padded copy.
+/// edge-padded copy. Each output is `((0 + k[0]·v[t]) + k[1]·v[t+1]) + …`, taps in order;
+/// the loop runs over the outputs tap by tap, so it vectorises across outputs (a sum per
+/// output in tap order is a serial chain of additions that does not).
 #[inline]
 fn convolve_line(data: &mut [f32], line: &mut [f32], k: &[f32]) {
     let r = k.len() / 2;
@@ -99,13 +101,11 @@ fn convolve_line(data: &mut [f32], line: &mut [f32], k: &[f32]) {
     let (first, last) = (data[0], data[n - 1]);
     line[..r].iter_mut().for_each(|v| *v = first);
     line[r + n..].iter_mut().for_each(|v| *v = last);
-    for (t, o) in data.iter_mut().enumerate() {
-        let window = &line[t..t + k.len()];
-        let mut acc = 0.0f32;
-        for (w, v) in k.iter().zip(window) {
-            acc += w * v;
+    data.iter_mut().for_each(|o| *o = 0.0);
+    for (t, &w) in k.iter().enumerate() {
+        for (o, &v) in data.iter_mut().zip(&line[t..t + n]) {
+            *o += w * v;
         }
-        *o = acc;
     }
 }
 
