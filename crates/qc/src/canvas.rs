@@ -165,7 +165,7 @@ impl RgbImage {
             let mut enc = png::Encoder::new(&mut out, self.width, self.height);
             enc.set_color(png::ColorType::Rgb);
             enc.set_depth(png::BitDepth::Eight);
-            enc.set_compression(png::Compression::High);
+            enc.set_compression(png::Compression::Fast);
             enc.set_filter(png::Filter::Adaptive);
             let mut w = enc.write_header()?;
             w.write_image_data(&self.data)?;
