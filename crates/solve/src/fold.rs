@@ -78,34 +78,44 @@ impl FoldPenalty {
     /// `det J(i, j, k)` for the row `(i, j, ·)` into `out`: the same values as
     /// [`jacobian`](Self::jacobian) and [`det3`] voxel by voxel (the same operations in the
     /// same order: `ratio·c` first, then times the difference, then plus the identity), with
-    /// the rows of the neighbours chosen once per row, so the inner loop has no branches.
+    /// the rows of the neighbours chosen once per row, so the inner loop has no branches and
+    /// vectorises. The last point of the row (backward difference along `k`) is computed by
+    /// [`jacobian`](Self::jacobian) itself.
     #[inline(always)]
     fn det_row(&self, u: [&[f32]; 3], i: usize, j: usize, out: &mut [f32]) {
         let [nx, ny, nz] = self.shape;
+        assert!(out.len() == nz && nz >= 1);
         let row = |d: usize, x: usize, y: usize| &u[d][(x * ny + y) * nz..(x * ny + y) * nz + nz];
         let (xm, xp, cx) = Self::stencil(i, nx);
         let (ym, yp, cy) = Self::stencil(j, ny);
-        let cz = if nz == 1 { 0.0 } else { 1.0 };
-        let rx: [[&[f32]; 2]; 3] = std::array::from_fn(|d| [row(d, xm, j), row(d, xp, j)]);
-        let ry: [[&[f32]; 2]; 3] = std::array::from_fn(|d| [row(d, i, ym), row(d, i, yp)]);
-        let rz: [&[f32]; 3] = std::array::from_fn(|d| row(d, i, j));
-        let rc: [[f32; 3]; 3] = std::array::from_fn(|d| [self.ratio[d][0] * cx, self.ratio[d][1] * cy, self.ratio[d][2] * cz]);
-        let at = |k: usize, zm: usize, zp: usize| {
-            let m: [[f32; 3]; 3] = std::array::from_fn(|d| {
-                let id = |a: usize| if d == a { 1.0 } else { 0.0 };
-                [
-                    id(0) + rc[d][0] * (rx[d][1][k] - rx[d][0][k]),
-                    id(1) + rc[d][1] * (ry[d][1][k] - ry[d][0][k]),
-                    id(2) + rc[d][2] * (rz[d][zp] - rz[d][zm]),
-                ]
-            });
-            det3(&m)
-        };
-        assert!(out.len() == nz && nz >= 1);
+        let r = &self.ratio;
+        let (a0, a1, a2) = (r[0][0] * cx, r[0][1] * cy, r[0][2]);
+        let (b0, b1, b2) = (r[1][0] * cx, r[1][1] * cy, r[1][2]);
+        let (c0, c1, c2) = (r[2][0] * cx, r[2][1] * cy, r[2][2]);
+        let (uxm, uxp, uym, uyp, uc) = (row(0, xm, j), row(0, xp, j), row(0, i, ym), row(0, i, yp), row(0, i, j));
+        let (vxm, vxp, vym, vyp, vc) = (row(1, xm, j), row(1, xp, j), row(1, i, ym), row(1, i, yp), row(1, i, j));
+        let (wxm, wxp, wym, wyp, wc) = (row(2, xm, j), row(2, xp, j), row(2, i, ym), row(2, i, yp), row(2, i, j));
         for k in 0..nz - 1 {
-            out[k] = at(k, k, k + 1);
+            let m = [
+                [
+                    1.0 + a0 * (uxp[k] - uxm[k]),
+                    0.0 + a1 * (uyp[k] - uym[k]),
+                    0.0 + a2 * (uc[k + 1] - uc[k]),
+                ],
+                [
+                    0.0 + b0 * (vxp[k] - vxm[k]),
+                    1.0 + b1 * (vyp[k] - vym[k]),
+                    0.0 + b2 * (vc[k + 1] - vc[k]),
+                ],
+                [
+                    0.0 + c0 * (wxp[k] - wxm[k]),
+                    0.0 + c1 * (wyp[k] - wym[k]),
+                    1.0 + c2 * (wc[k + 1] - wc[k]),
+                ],
+            ];
+            out[k] = det3(&m);
         }
-        out[nz - 1] = if nz == 1 { at(0, 0, 0) } else { at(nz - 1, nz - 2, nz - 1) };
+        out[nz - 1] = det3(&self.jacobian(u, i, j, nz - 1));
     }
 
     /// Returns `P(u)` (already weighted by `weight` = μ) and adds `∂P/∂u` to `grad` (both
