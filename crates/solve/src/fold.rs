@@ -97,21 +97,9 @@ impl FoldPenalty {
         let (wxm, wxp, wym, wyp, wc) = (row(2, xm, j), row(2, xp, j), row(2, i, ym), row(2, i, yp), row(2, i, j));
         for k in 0..nz - 1 {
             let m = [
-                [
-                    1.0 + a0 * (uxp[k] - uxm[k]),
-                    0.0 + a1 * (uyp[k] - uym[k]),
-                    0.0 + a2 * (uc[k + 1] - uc[k]),
-                ],
-                [
-                    0.0 + b0 * (vxp[k] - vxm[k]),
-                    1.0 + b1 * (vyp[k] - vym[k]),
-                    0.0 + b2 * (vc[k + 1] - vc[k]),
-                ],
-                [
-                    0.0 + c0 * (wxp[k] - wxm[k]),
-                    0.0 + c1 * (wyp[k] - wym[k]),
-                    1.0 + c2 * (wc[k + 1] - wc[k]),
-                ],
+                [1.0 + a0 * (uxp[k] - uxm[k]), 0.0 + a1 * (uyp[k] - uym[k]), 0.0 + a2 * (uc[k + 1] - uc[k])],
+                [0.0 + b0 * (vxp[k] - vxm[k]), 1.0 + b1 * (vyp[k] - vym[k]), 0.0 + b2 * (vc[k + 1] - vc[k])],
+                [0.0 + c0 * (wxp[k] - wxm[k]), 0.0 + c1 * (wyp[k] - wym[k]), 1.0 + c2 * (wc[k + 1] - wc[k])],
             ];
             out[k] = det3(&m);
         }
@@ -306,7 +294,11 @@ mod tests {
                 for j in 0..shape[1] {
                     p.det_row([ux, uy, uz], i, j, &mut row);
                     for (k, &d) in row.iter().enumerate() {
-                        assert_eq!(d.to_bits(), det3(&p.jacobian([ux, uy, uz], i, j, k)).to_bits(), "{shape:?} {i} {j} {k}");
+                        assert_eq!(
+                            d.to_bits(),
+                            det3(&p.jacobian([ux, uy, uz], i, j, k)).to_bits(),
+                            "{shape:?} {i} {j} {k}"
+                        );
                     }
                 }
             }

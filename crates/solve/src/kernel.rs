@@ -313,7 +313,8 @@ unsafe fn data_term12_avx2(p: [f32; 3], shape: [usize; 3], moving: &[f32], fixed
     use std::arch::x86_64::*;
     let st = sinew_grid::interp::stencil([p[0] as f64, p[1] as f64, p[2] as f64], shape);
     assert!(fixed.len() == 12 && st.offset.iter().all(|&o| o * 12 + 12 <= moving.len()), "12 channels in bounds");
-    let (mut v8, mut x8, mut y8, mut z8) = (_mm256_setzero_ps(), _mm256_setzero_ps(), _mm256_setzero_ps(), _mm256_setzero_ps());
+    let (mut v8, mut x8, mut y8, mut z8) =
+        (_mm256_setzero_ps(), _mm256_setzero_ps(), _mm256_setzero_ps(), _mm256_setzero_ps());
     let (mut v4, mut x4, mut y4, mut z4) = (_mm_setzero_ps(), _mm_setzero_ps(), _mm_setzero_ps(), _mm_setzero_ps());
     for n in 0..8 {
         // SAFETY: 12 floats from `offset·12` lie inside `moving` (asserted above).
