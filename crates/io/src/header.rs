@@ -510,53 +510,6 @@ pub(crate) fn serialize(grid: &Grid, w: &WriteHeader<'_>) -> Vec<u8> {
 mod tests {
     use super::*;
 
-    fn rot(axis: usize, deg: f64) -> [[f64; 3]; 3] {
-        let (s, c) = deg.to_radians().sin_cos();
-        let (p, q) = ((axis + 1) % 3, (axis + 2) % 3);
-        let mut r = [[0.0; 3]; 3];
-        r[axis][axis] = 1.0;
-        r[p][p] = c;
-        r[q][q] = c;
-        r[p][q] = -s;
-        r[q][p] = s;
-        r
-    }
-
-    fn mul(a: &[[f64; 3]; 3], b: &[[f64; 3]; 3]) -> [[f64; 3]; 3] {
-        let mut o = [[0.0; 3]; 3];
-        for r in 0..3 {
-            for c in 0..3 {
-                o[r][c] = (0..3).map(|k| a[r][k] * b[k][c]).sum();
-            }
-        }
-        o
-    }
-
-    #[test]
-    fn qform_round_trips_rotations_and_flips() {
-        // Exact math: a rigid affine (rotation · diag(spacing), optionally mirrored) is
-        // reproduced by its own qform.
-        for (ax, deg) in [(0, 0.0), (2, 30.0), (1, 179.0), (0, -120.0), (2, 180.0), (1, 90.0)] {
-            for flip in [1.0, -1.0] {
-                let r = mul(&rot(ax, deg), &rot((ax + 1) % 3, 17.0));
-                let s = [0.7, 1.3, 2.5];
-                let mut lin = [[0.0; 3]; 3];
-                for i in 0..3 {
-                    for j in 0..3 {
-                        lin[i][j] = r[i][j] * s[j] * if j == 2 { flip } else { 1.0 };
-                    }
-                }
-                let a = Affine::from_parts(lin, [3.0, -4.0, 5.0]);
-                let (q, sp, qfac, off) = affine_to_qform(&a);
-                assert_eq!(qfac, flip);
-                let back = qform_affine(q, sp, qfac, off);
-                for (x, y) in back.m.iter().flatten().zip(a.m.iter().flatten()) {
-                    assert!((x - y).abs() < 1e-12, "{ax} {deg} {flip}: {back:?} vs {a:?}");
-                }
-            }
-        }
-    }
-
     #[test]
     fn sheared_affine_gets_nearest_rotation() {
         let a = Affine::from_parts([[1.0, 0.2, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 2.0]], [0.0; 3]);

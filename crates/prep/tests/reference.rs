@@ -14,6 +14,7 @@ use sinew_grid::{Affine, Grid, Image, LabelMap, Volume};
 use sinew_prep::mask::{body_mask, BodyParams};
 use sinew_prep::orient::{plan, reorient};
 use sinew_prep::{prepare, AxisCodes, Resample, Steps};
+use sinew_testkit::{matmul3, rotation};
 
 fn script() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("../../scripts/ref/prep_reference.py")
@@ -33,28 +34,6 @@ fn s(p: &Path) -> &str {
     p.to_str().unwrap()
 }
 
-fn rot(axis: usize, deg: f64) -> [[f64; 3]; 3] {
-    let (c, s) = (deg.to_radians().cos(), deg.to_radians().sin());
-    let (p, q) = ((axis + 1) % 3, (axis + 2) % 3);
-    let mut r = [[0.0; 3]; 3];
-    r[axis][axis] = 1.0;
-    r[p][p] = c;
-    r[q][q] = c;
-    r[p][q] = -s;
-    r[q][p] = s;
-    r
-}
-
-fn matmul(a: [[f64; 3]; 3], b: [[f64; 3]; 3]) -> [[f64; 3]; 3] {
-    let mut c = [[0.0; 3]; 3];
-    for i in 0..3 {
-        for j in 0..3 {
-            c[i][j] = (0..3).map(|k| a[i][k] * b[k][j]).sum();
-        }
-    }
-    c
-}
-
 /// Test affines: axis-aligned, permuted with flips, oblique (rotations 20° and −12°) with a
 /// mirrored axis, and a sheared one.
 fn affines() -> Vec<Affine> {
@@ -62,12 +41,15 @@ fn affines() -> Vec<Affine> {
         Affine::from_spacing_origin([2.0, 3.0, 4.0], [-10.0, 20.0, 5.0]),
         Affine::from_parts([[0.0, 0.0, -3.0], [2.0, 0.0, 0.0], [0.0, -1.5, 0.0]], [40.0, -20.0, 15.0]),
         Affine::from_parts(
-            matmul(matmul(rot(2, 20.0), rot(0, -12.0)), [[1.5, 0.0, 0.0], [0.0, -2.0, 0.0], [0.0, 0.0, 2.5]]),
+            matmul3(
+                matmul3(rotation(2, 20.0), rotation(0, -12.0)),
+                [[1.5, 0.0, 0.0], [0.0, -2.0, 0.0], [0.0, 0.0, 2.5]],
+            ),
             [12.5, -30.0, 8.0],
         ),
         // sheared (sform only in practice): nibabel orthogonalises before choosing axes
         Affine::from_parts(
-            matmul(rot(1, 15.0), [[1.0, 0.25, 0.0], [0.0, 1.1, 0.1], [0.0, 0.0, 2.5]]),
+            matmul3(rotation(1, 15.0), [[1.0, 0.25, 0.0], [0.0, 1.1, 0.1], [0.0, 0.0, 2.5]]),
             [-100.0, 50.0, -20.0],
         ),
     ]
