@@ -3,11 +3,13 @@
 //!
 //! - [`resolve_params`]: preset, then a parameter table, then keyword overrides (the order of
 //!   `sinew register --preset … --config … --lambda …`).
-//! - [`register`]: the checks of `sinew register` on its inputs, the moving scan brought onto
-//!   the fixed grid through world coordinates when the grids differ, [`sinew_solve::register`],
+//! - [`register`]: the checks of `sinew register` on its inputs, then what the command does:
+//!   [`sinew_solve::register_scans`] (each scan on its own grid and in its own world frame:
+//!   working grid, initial alignment, linear stage, deformable stage, with the command's
+//!   [`ScanOptions`]), and on the fixed scan's native grid ([`sinew_solve::native_outputs`])
 //!   the warped scan (padding = the moving scan's minimum), the warped labels (nearest
-//!   neighbour), the Jacobian determinant and its statistics, Dice before/after, and a report
-//!   with the command's fields (less the file names).
+//!   neighbour), the Jacobian determinant and its statistics; Dice before/after, and a report
+//!   with the command's fields (less the file names and the QC sheet).
 //! - [`field_from_channel_last`], [`score`], [`mind_ssc`]: the field, scoring and descriptor
 //!   conventions of `sinew score` / `sinew warp`.
 
@@ -16,7 +18,10 @@ use std::time::Instant;
 use ndarray::{Array4, ArrayView3, ArrayView4};
 use serde::Serialize;
 use serde_json::{Map, Value};
-use sinew_grid::{resample, Affine, Border, Field, Grid, Image, LabelMap, Volume, WorldPoint};
+use sinew_grid::{Affine, Field, Grid, Image, LabelMap, Volume, WorldPoint};
+use sinew_solve::frames::InitialAlignment;
+use sinew_solve::scans::GridSummary;
+pub use sinew_solve::{with_threads, InitialMode, ScanOptions, Timings};
 use sinew_solve::{Progress, RegParams};
 
 use crate::error::{input, ApiError};
@@ -247,33 +252,6 @@ impl Inputs {
     }
 }
 
-/// Stage timings in seconds (the command line's, less reading and writing files).
-#[derive(Serialize, Default, Clone, Debug)]
-pub struct Timings {
-    /// Bringing the moving scan onto the fixed grid.
-    pub resample_s: f64,
-    /// The linear (rigid/affine) stage.
-    pub affine_s: f64,
-    /// Building the pyramids.
-    pub pyramid_s: f64,
-    /// Descriptors, all levels.
-    pub descriptors_s: f64,
-    /// Optimisation, all levels.
-    pub optimise_s: f64,
-    /// Per-level Jacobian checks.
-    pub level_jacobian_s: f64,
-    /// Upsampling the field to the input grid.
-    pub upsample_s: f64,
-    /// Start of the call to field in memory.
-    pub register_s: f64,
-    /// Warping the scan and labels.
-    pub warp_s: f64,
-    /// Final Jacobian and statistics.
-    pub jacobian_s: f64,
-    /// Wall time of the whole call (inside Rust).
-    pub total_s: f64,
-}
-
 /// The report of one registration: the fields of `sinew register`'s `report.json` less the
 /// input and output files.
 #[derive(Serialize, Clone, Debug)]
@@ -288,9 +266,26 @@ pub struct Report {
     pub field_units: Units,
     /// Worker threads.
     pub threads: usize,
-    /// Whether the moving scan had to be resampled onto the fixed grid first.
+    /// Working grid, initial alignment mode and anti-aliasing.
+    pub scan: ScanOptions,
+    /// Whether the moving scan lies on another grid than the fixed scan.
     pub moving_resampled: bool,
-    /// Stage timings in seconds.
+    /// The fixed scan's working grid (the registration's grid).
+    pub working_grid: GridSummary,
+    /// The moving scan's own working grid.
+    pub moving_working_grid: GridSummary,
+    /// True when the registration ran on the fixed scan's own grid.
+    pub working_is_fixed_grid: bool,
+    /// The initial alignment between the world frames (always computed; `applied` says
+    /// whether it was used) and the body overlap before and after.
+    pub initial_alignment: InitialAlignment,
+    /// The whole linear part of the map (4×4 world mm, fixed point ↦ moving point): initial
+    /// alignment then rigid/affine stage; the identity when neither ran. Part of the field.
+    pub linear_map: [[f64; 4]; 4],
+    /// The rigid/affine stage, when one ran (its `matrix` is the whole linear map).
+    pub linear: Option<sinew_solve::affine::AffineEstimate>,
+    /// Stage timings in seconds (no `load_s`, `write_s` or `peak_rss_mb`: nothing is read or
+    /// written).
     pub timings: Timings,
     /// Per-level reports (coarsest first).
     pub levels: Vec<sinew_solve::LevelReport>,
@@ -298,8 +293,6 @@ pub struct Report {
     pub jacobian: sinew_transform::JacobianStats,
     /// Dice per label before and after (with both label maps).
     pub dice: Option<DiceReport>,
-    /// The linear stage's map (fixed world mm → moving world mm), already part of the field.
-    pub affine: Option<sinew_solve::affine::AffineEstimate>,
 }
 
 /// What [`register`] returns.
@@ -318,54 +311,44 @@ pub struct Output {
 
 /// One registration, as `sinew register` does it once its files are read (see the module
 /// documentation). `observer` sees the solver's progress events. Runs on the current rayon
-/// pool (see [`with_threads`]).
+/// pool (see [`with_threads`]). The field is formed whole on the fixed scan's native grid
+/// ([`sinew_solve::NativeField::to_field`]: 12 bytes per voxel).
 pub fn register(
     inputs: &Inputs,
     params: &RegParams,
+    scan: &ScanOptions,
     units: Units,
     observer: &mut dyn FnMut(Progress),
 ) -> Result<Output, ApiError> {
     let t_all = Instant::now();
     inputs.check()?;
     params.validate().map_err(|e| ApiError::Parameter(format!("parameters: {e}")))?;
-    let mut timings = Timings::default();
-    let t = Instant::now();
-    let moving_resampled = !inputs.fixed.grid.same_as(&inputs.moving.grid, 1e-3);
-    let resampled;
-    let moving_on_fixed = if moving_resampled {
-        resampled = resample::resample_image(&inputs.moving, &inputs.fixed.grid, Border::Nearest);
-        &resampled
-    } else {
-        &inputs.moving
-    };
-    timings.resample_s = t.elapsed().as_secs_f64();
-
-    let reg = sinew_solve::register(&inputs.fixed, moving_on_fixed, inputs.mask.as_ref(), params, observer)?;
-    timings.pyramid_s = reg.pyramid_s;
-    timings.affine_s = reg.affine_s;
-    timings.upsample_s = reg.upsample_s;
-    for l in &reg.levels {
-        timings.descriptors_s += l.descriptors_s;
-        timings.optimise_s += l.optimise_s;
-        timings.level_jacobian_s += l.jacobian_s;
+    if !(scan.working_spacing_mm.is_finite() && scan.working_spacing_mm >= 0.0) {
+        return Err(input(format!(
+            "working_spacing: {}: must be 0 or a positive number of mm",
+            scan.working_spacing_mm
+        )));
     }
+    let mut timings = Timings::default();
+    let moving_resampled = !inputs.fixed.grid.same_as(&inputs.moving.grid, 1e-3);
+    let reg = sinew_solve::register_scans(&inputs.fixed, &inputs.moving, inputs.mask.as_ref(), params, scan, observer)?;
+    timings.record(&reg);
     timings.register_s = t_all.elapsed().as_secs_f64();
 
     let t = Instant::now();
     let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
-    let warped = sinew_transform::warp_image_from(&inputs.moving, &reg.field, Border::Constant(pad));
-    let warped_labels = inputs.moving_labels.as_ref().map(|l| sinew_transform::warp_labels_from(l, &reg.field));
+    let native = sinew_solve::native_outputs(&reg.field, &inputs.moving, pad, inputs.moving_labels.as_ref());
     timings.warp_s = t.elapsed().as_secs_f64();
 
     let t = Instant::now();
-    let jacdet = sinew_transform::jacobian_determinant(&reg.field);
-    let jacobian = sinew_transform::jacobian_stats(&jacdet, None);
+    let jacobian = sinew_transform::jacobian_stats(&native.jacdet, None);
     timings.jacobian_s = t.elapsed().as_secs_f64();
 
-    let dice = match (&inputs.fixed_labels, &inputs.moving_labels, &warped_labels) {
+    let dice = match (&inputs.fixed_labels, &inputs.moving_labels, &native.warped_labels) {
         (Some(f), Some(m), Some(w)) => Some(dice_report(f, m, w)?),
         _ => None,
     };
+    let field = reg.field.to_field();
     timings.total_s = t_all.elapsed().as_secs_f64();
     let report = Report {
         caution: CAUTION,
@@ -373,30 +356,37 @@ pub fn register(
         params: params.clone(),
         field_units: units,
         threads: rayon::current_num_threads(),
+        scan: scan.clone(),
         moving_resampled,
+        working_grid: reg.working.clone(),
+        moving_working_grid: reg.moving_working.clone(),
+        working_is_fixed_grid: reg.working_is_fixed_grid,
+        linear: reg.linear_record(),
+        initial_alignment: reg.initial,
+        linear_map: reg.linear_map,
         timings,
         levels: reg.levels,
         jacobian,
         dice,
-        affine: reg.affine,
     };
-    Ok(Output { field: reg.field, warped, warped_labels, jacdet, report })
+    Ok(Output { field, warped: native.warped, warped_labels: native.warped_labels, jacdet: native.jacdet, report })
 }
 
-/// Runs `f` on a pool of `threads` workers (the current pool when `None`).
-pub fn with_threads<T: Send>(
-    threads: Option<usize>,
-    f: impl FnOnce() -> Result<T, ApiError> + Send,
-) -> Result<T, ApiError> {
-    match threads {
-        None => f(),
-        Some(0) => Err(input("threads must be at least 1")),
-        Some(n) => rayon::ThreadPoolBuilder::new()
-            .num_threads(n)
-            .build()
-            .map_err(|e| input(format!("starting {n} worker threads: {e}")))?
-            .install(f),
-    }
+/// The scan options from the Python keywords: `working_spacing` (mm, 0 = the fixed scan's own
+/// grid), `initial` (`"auto"`, `"centres"`, `"axes"` or `"off"`, as `--initial`) and
+/// `antialias` (false = `--no-antialias`).
+/// The spacing is checked by [`register`].
+pub fn scan_options(working_spacing: f64, initial: &str, antialias: bool) -> Result<ScanOptions, ApiError> {
+    let initial = match initial {
+        "auto" => InitialMode::Auto,
+        "centres" => InitialMode::Centres,
+        "axes" => InitialMode::Axes,
+        "off" => InitialMode::Off,
+        other => {
+            return Err(input(format!("initial: expected \"auto\", \"centres\", \"axes\" or \"off\", got {other:?}")))
+        }
+    };
+    Ok(ScanOptions { working_spacing_mm: working_spacing, initial, antialias })
 }
 
 /// A field on `grid` from channel-last vectors `(nx, ny, nz, 3)` (any memory layout) in
@@ -552,7 +542,7 @@ mod tests {
         moving.data[[1, 1, 1]] = f32::NAN;
         let inputs = Inputs { fixed: fixed.clone(), moving, fixed_labels: None, moving_labels: None, mask: None };
         let p = RegParams::preset("fast").unwrap();
-        let e = register(&inputs, &p, Units::Voxel, &mut |_| {}).err().unwrap().to_string();
+        let e = register(&inputs, &p, &ScanOptions::default(), Units::Voxel, &mut |_| {}).err().unwrap().to_string();
         assert_eq!(
             e,
             "moving: 1 voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value)"
@@ -564,8 +554,26 @@ mod tests {
             moving_labels: None,
             mask: Some(LabelMap::filled(g, 0)),
         };
-        let e = register(&inputs, &p, Units::Voxel, &mut |_| {}).err().unwrap().to_string();
+        let e = register(&inputs, &p, &ScanOptions::default(), Units::Voxel, &mut |_| {}).err().unwrap().to_string();
         assert_eq!(e, "mask: the mask is empty (no non-zero voxel)");
+    }
+
+    #[test]
+    fn scan_keywords_are_the_command_line_flags() {
+        // The defaults of `sinew register --working-spacing 2 --initial auto` (anti-aliasing on).
+        assert_eq!(scan_options(2.0, "auto", true).unwrap(), ScanOptions::default());
+        let o = scan_options(0.0, "axes", false).unwrap();
+        assert_eq!((o.working_spacing_mm, o.initial, o.antialias), (0.0, InitialMode::Axes, false));
+        let e = scan_options(2.0, "center", true).unwrap_err().to_string();
+        assert_eq!(e, "initial: expected \"auto\", \"centres\", \"axes\" or \"off\", got \"center\"");
+        let g = Grid::axis_aligned([12, 10, 8], [2.0; 3], [0.0; 3]);
+        let fixed = Image::new(g, blob([12, 10, 8], [6.0, 5.0, 4.0])).unwrap();
+        let inputs =
+            Inputs { fixed: fixed.clone(), moving: fixed, fixed_labels: None, moving_labels: None, mask: None };
+        let bad = ScanOptions { working_spacing_mm: -1.0, ..ScanOptions::default() };
+        let p = RegParams::preset("fast").unwrap();
+        let e = register(&inputs, &p, &bad, Units::Voxel, &mut |_| {}).err().unwrap().to_string();
+        assert_eq!(e, "working_spacing: -1: must be 0 or a positive number of mm");
     }
 
     #[test]

@@ -17,6 +17,9 @@ pub enum ApiError {
     /// Scoring failed.
     #[error("{0}")]
     Score(#[from] sinew_score::ScoreError),
+    /// The worker threads asked for cannot be started.
+    #[error("{0}")]
+    Threads(#[from] sinew_solve::ThreadsError),
     /// Two grids or shapes do not fit.
     #[error("{0}")]
     Grid(#[from] sinew_grid::GridError),

@@ -50,7 +50,8 @@ fn json_value(text: &str, what: &str) -> Result<serde_json::Value, ApiError> {
 #[pyfunction]
 #[pyo3(signature = (fixed, fixed_affine, moving, moving_affine, fixed_labels=None, moving_labels=None,
     mask=None, preset="default", config_json=None, config_name="config", params_json="{}", units="voxel",
-    threads=None, progress=None))]
+    working_spacing=sinew_solve::scans::DEFAULT_WORKING_MM, initial="auto", antialias=true, threads=None,
+    progress=None))]
 #[allow(clippy::too_many_arguments)]
 fn register<'py>(
     py: Python<'py>,
@@ -66,6 +67,9 @@ fn register<'py>(
     config_name: &str,
     params_json: &str,
     units: &str,
+    working_spacing: f64,
+    initial: &str,
+    antialias: bool,
     threads: Option<usize>,
     progress: Option<Py<PyAny>>,
 ) -> PyResult<Bound<'py, PyDict>> {
@@ -76,6 +80,7 @@ fn register<'py>(
     let callback_error: Mutex<Option<PyErr>> = Mutex::new(None);
     let result = py.detach(|| {
         let units = Units::parse(units, "units")?;
+        let scan = core::scan_options(working_spacing, initial, antialias)?;
         let config = config_json.map(|c| json_value(c, config_name)).transpose()?;
         let overrides = match json_value(params_json, "params")? {
             serde_json::Value::Object(m) => m,
@@ -123,7 +128,7 @@ fn register<'py>(
                     }
                 });
             };
-            let out = core::register(&inputs, &params, units, &mut observer)?;
+            let out = core::register(&inputs, &params, &scan, units, &mut observer)?;
             let field = core::field_to_channel_last(&out.field, units);
             let report = serde_json::to_string(&out.report).expect("the report serialises");
             Ok((field, out.warped.data, out.warped_labels.map(|l| l.data), out.jacdet.data, report))
@@ -363,6 +368,8 @@ fn _sinew(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add("PRESETS", sinew_solve::PRESETS.to_vec())?;
     m.add("PARAMETERS", core::parameter_names())?;
     m.add("CAUTION", core::CAUTION)?;
+    m.add("DEFAULT_WORKING_SPACING", sinew_solve::scans::DEFAULT_WORKING_MM)?;
+    m.add("WARN_OVERLAP", sinew_solve::frames::WARN_OVERLAP)?;
     m.add("__version__", env!("CARGO_PKG_VERSION"))?;
     Ok(())
 }

@@ -166,3 +166,23 @@ def test_mind_ssc_shape_and_contrast_invariance():
     d2 = sinew.mind_ssc(3.0 * img.astype(np.float64) + 100.0)
     np.testing.assert_allclose(d2, d, atol=2e-3)
     assert not np.allclose(sinew.mind_ssc(img, dilation=1), d)
+
+
+def test_scans_in_far_apart_frames(scans):
+    # The moving header puts the same body 400 mm away along x. With initial="off" the frames
+    # are trusted, the bodies do not overlap at all, and the call warns as the command line
+    # does; with the default ("auto") the initial alignment is applied and finds the shift.
+    fixed, moving, _, _ = scans
+    far = np.diag([2.0, 2.0, 2.5, 1.0])
+    far[0, 3] = 400.0
+    with pytest.warns(UserWarning, match="fixed and moving: the bodies overlap only 0 % after the initial alignment"):
+        off = sinew.register(fixed, moving, affine=(np.diag([2.0, 2.0, 2.5, 1.0]), far), initial="off", **FAST)
+    assert off.report["initial_alignment"]["applied"] is False
+    assert off.report["initial_alignment"]["overlap_final"] < sinew.WARN_OVERLAP
+    auto = sinew.register(fixed, moving, affine=(np.diag([2.0, 2.0, 2.5, 1.0]), far), **FAST)
+    assert auto.report["initial_alignment"]["applied"] is True
+    assert auto.report["initial_alignment"]["overlap_final"] > 0.8
+    # The linear map moves fixed points about 400 mm along x (the bodies differ by 1.5 voxels
+    # = 3 mm besides), and the field carries it: x + u(x) lands about 200 voxels away.
+    assert abs(auto.linear_map[0, 3] - 400.0) < 10.0, auto.linear_map
+    assert abs(float(np.median(auto.field[..., 0])) - 200.0) < 5.0

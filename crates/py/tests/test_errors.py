@@ -75,6 +75,13 @@ def test_bad_parameters(tmp_path):
     _raises("threads must be at least 1", sinew.register, SCAN, OTHER, threads=0)
     _raises('units must be "voxel" or "mm"', sinew.register, SCAN, OTHER, units="cm", **QUICK)
     _raises("progress: must be callable", sinew.register, SCAN, OTHER, progress=3, **QUICK)
+    _raises("working_spacing: -1: must be 0 or a positive number of mm", sinew.register, SCAN, OTHER,
+            working_spacing=-1, **QUICK)  # fmt: skip
+    _raises("working_spacing: inf: must be 0 or a positive", sinew.register, SCAN, OTHER, working_spacing=np.inf, **QUICK)
+    _raises("working_spacing: must be a number of mm", sinew.register, SCAN, OTHER, working_spacing="2", **QUICK)
+    _raises('initial: expected "auto", "centres", "axes" or "off", got "center"', sinew.register, SCAN, OTHER,
+            initial="center", **QUICK)  # fmt: skip
+    _raises("antialias: must be True or False", sinew.register, SCAN, OTHER, antialias="no", **QUICK)
     missing = tmp_path / "none.toml"
     _raises(f"{missing}: cannot read", sinew.register, SCAN, OTHER, config=missing, **QUICK)
     bad = tmp_path / "bad.toml"

@@ -142,6 +142,110 @@ pub struct ScanRegistration {
     pub upsample_s: f64,
 }
 
+impl ScanRegistration {
+    /// The linear stage as a report records it: its `matrix` replaced by the whole linear map
+    /// [`ScanRegistration::linear_map`] (the stage ran after the initial alignment, so its own
+    /// matrix alone is not the map). `None` when no stage ran.
+    pub fn linear_record(&self) -> Option<AffineEstimate> {
+        self.linear.clone().map(|mut e| {
+            e.matrix = self.linear_map;
+            e
+        })
+    }
+}
+
+/// Stage timings of one registration in seconds, as `report.json` (the command line) and the
+/// Python module's report give them. The entries about files (`load_s`, `write_s`) and the
+/// process (`peak_rss_mb`) are left out of the report when not set.
+#[derive(Clone, Debug, Default, Serialize)]
+pub struct Timings {
+    /// Reading the inputs.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub load_s: Option<f64>,
+    /// Bringing both scans to their working grids (with the anti-aliasing prefilter).
+    pub resample_s: f64,
+    /// Body masks and the initial alignment.
+    pub initial_s: f64,
+    /// The linear (rigid/affine) stage.
+    pub affine_s: f64,
+    /// Building the pyramids.
+    pub pyramid_s: f64,
+    /// Descriptors, all levels.
+    pub descriptors_s: f64,
+    /// Optimisation, all levels.
+    pub optimise_s: f64,
+    /// Per-level Jacobian checks.
+    pub level_jacobian_s: f64,
+    /// Upsampling the field to the input grid.
+    pub upsample_s: f64,
+    /// From the start (with `load_s`, of loading) to the field in memory.
+    pub register_s: f64,
+    /// Warping the scan and labels.
+    pub warp_s: f64,
+    /// Final Jacobian and statistics.
+    pub jacobian_s: f64,
+    /// Writing the outputs.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub write_s: Option<f64>,
+    /// Wall time of the whole command (or call).
+    pub total_s: f64,
+    /// Peak resident memory of the process in MB.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub peak_rss_mb: Option<f64>,
+}
+
+impl Timings {
+    /// Records the stages of `reg`: the working grids, the initial alignment, the linear
+    /// stage, the pyramids, the upsampling, and the per-level descriptors, optimisation and
+    /// Jacobian checks summed over the levels (coarsest first).
+    pub fn record(&mut self, reg: &ScanRegistration) {
+        self.resample_s = reg.working_s;
+        self.initial_s = reg.initial_s;
+        self.affine_s = reg.affine_s;
+        self.pyramid_s = reg.pyramid_s;
+        self.upsample_s = reg.upsample_s;
+        for l in &reg.levels {
+            self.descriptors_s += l.descriptors_s;
+            self.optimise_s += l.optimise_s;
+            self.level_jacobian_s += l.jacobian_s;
+        }
+    }
+}
+
+/// A worker pool that [`with_threads`] could not start.
+#[derive(Debug, thiserror::Error)]
+pub enum ThreadsError {
+    /// Zero threads were asked for.
+    #[error("threads must be at least 1")]
+    Zero,
+    /// The operating system refused the threads.
+    #[error("starting {threads} worker threads: {why}")]
+    Start {
+        /// Threads asked for.
+        threads: usize,
+        /// The reason given.
+        why: String,
+    },
+}
+
+/// Runs `f` on a pool of `threads` workers, or on the current pool (all cores unless the
+/// caller made another) when `None`. The results do not depend on the thread count (sums per
+/// slab are added in slab order); only the time does.
+pub fn with_threads<T: Send, E: From<ThreadsError> + Send>(
+    threads: Option<usize>,
+    f: impl FnOnce() -> Result<T, E> + Send,
+) -> Result<T, E> {
+    match threads {
+        None => f(),
+        Some(0) => Err(ThreadsError::Zero.into()),
+        Some(n) => rayon::ThreadPoolBuilder::new()
+            .num_threads(n)
+            .build()
+            .map_err(|e| ThreadsError::Start { threads: n, why: e.to_string() })?
+            .install(f),
+    }
+}
+
 fn to_working(img: &Image, grid: &Grid, antialias: bool) -> Option<Image> {
     if grid.same_as(&img.grid, 1e-9) {
         return None;

@@ -8,6 +8,7 @@ use sinew_grid::{Image, LabelMap};
 
 pub use sinew_cohort::{sha256_file, write_json, CAUTION};
 pub use sinew_score::{dice_report, DiceReport};
+pub use sinew_solve::with_threads;
 
 /// The inputs of one pair, read and checked.
 pub struct Inputs {
@@ -225,21 +226,6 @@ pub fn prepare_out_dir(dir: &Path, outputs: &[PathBuf], inputs: &[PathBuf]) -> a
         sinew_io::atomic::ensure_not_input(o, inputs)?;
     }
     Ok(())
-}
-
-/// Runs `f` on a thread pool of `threads` workers (all cores when `None`).
-pub fn with_threads<T: Send>(
-    threads: Option<usize>,
-    f: impl FnOnce() -> anyhow::Result<T> + Send,
-) -> anyhow::Result<T> {
-    match threads {
-        None => f(),
-        Some(0) => bail!("--threads must be at least 1"),
-        Some(n) => {
-            let pool = rayon::ThreadPoolBuilder::new().num_threads(n).build().context("starting worker threads")?;
-            pool.install(f)
-        }
-    }
 }
 
 /// Peak resident memory of this process in MB, from `VmHWM` in `/proc/self/status` (Linux);

@@ -486,7 +486,7 @@ pub struct Report {
     /// The rigid/affine stage, when one ran (its `matrix` is the whole linear map).
     pub linear: Option<sinew_solve::affine::AffineEstimate>,
     /// Stage timings in seconds.
-    pub timings: Timings,
+    pub timings: sinew_solve::Timings,
     /// Per-level reports (coarsest first).
     pub levels: Vec<sinew_solve::LevelReport>,
     /// Jacobian statistics of the final field on the fixed grid.
@@ -497,41 +497,6 @@ pub struct Report {
     pub qc: Option<crate::cmd::qc::QcRecord>,
     /// Files written.
     pub outputs: Vec<String>,
-}
-
-/// Stage timings in seconds.
-#[derive(Serialize, Default)]
-pub struct Timings {
-    /// Reading the inputs.
-    pub load_s: f64,
-    /// Bringing both scans to their working grids (with the anti-aliasing prefilter).
-    pub resample_s: f64,
-    /// Body masks and the initial alignment.
-    pub initial_s: f64,
-    /// The linear (rigid/affine) stage.
-    pub affine_s: f64,
-    /// Building the pyramids.
-    pub pyramid_s: f64,
-    /// Descriptors, all levels.
-    pub descriptors_s: f64,
-    /// Optimisation, all levels.
-    pub optimise_s: f64,
-    /// Per-level Jacobian checks.
-    pub level_jacobian_s: f64,
-    /// Upsampling the field to the input grid.
-    pub upsample_s: f64,
-    /// Loading to field in memory.
-    pub register_s: f64,
-    /// Warping the scan and labels.
-    pub warp_s: f64,
-    /// Final Jacobian and statistics.
-    pub jacobian_s: f64,
-    /// Writing the outputs.
-    pub write_s: f64,
-    /// Wall time of the whole command.
-    pub total_s: f64,
-    /// Peak resident memory of the process in MB (Linux `VmHWM`; absent elsewhere).
-    pub peak_rss_mb: Option<f64>,
 }
 
 /// Runs `sinew register`.
@@ -552,7 +517,7 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         args.mask.as_deref(),
         args.scan.nan_policy()?,
     )?;
-    let mut timings = Timings { load_s: t_all.elapsed().as_secs_f64(), ..Timings::default() };
+    let mut timings = sinew_solve::Timings { load_s: Some(t_all.elapsed().as_secs_f64()), ..Default::default() };
     let mut out_paths =
         OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, !args.no_qc, args.out_format.extension());
     out_paths.affine = Some(args.out.join("affine.json"));
@@ -560,16 +525,7 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
     let moving_resampled = !inputs.fixed.grid.same_as(&inputs.moving.grid, 1e-3);
 
     let reg = register_with_progress(&inputs.fixed, &inputs.moving, inputs.mask.as_ref(), params, &scan_opts, args)?;
-    timings.resample_s = reg.working_s;
-    timings.initial_s = reg.initial_s;
-    timings.pyramid_s = reg.pyramid_s;
-    timings.affine_s = reg.affine_s;
-    timings.upsample_s = reg.upsample_s;
-    for l in &reg.levels {
-        timings.descriptors_s += l.descriptors_s;
-        timings.optimise_s += l.optimise_s;
-        timings.level_jacobian_s += l.jacobian_s;
-    }
+    timings.record(&reg);
     timings.register_s = t_all.elapsed().as_secs_f64();
     let linear_map = sinew_grid::Affine::from_4x4(reg.linear_map);
     let has_linear = linear_map != sinew_grid::Affine::IDENTITY || reg.linear.is_some();
@@ -609,11 +565,8 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
     if out_paths.affine.is_none() {
         remove_files([args.out.join("affine.json")]);
     }
-    let linear = reg.linear.clone().map(|mut e| {
-        // The stage ran after the initial alignment; the file holds the whole linear map.
-        e.matrix = reg.linear_map;
-        e
-    });
+    // The stage ran after the initial alignment; the file holds the whole linear map.
+    let linear = reg.linear_record();
     let written = (|| -> anyhow::Result<Report> {
         write_outputs(&out_paths, &reg.field, args.field_units.into(), &native)?;
         if let Some(path) = &out_paths.affine {
@@ -623,7 +576,7 @@ pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Repor
         if out_paths.qc.is_some() {
             qc = Some(draw_qc(args, &inputs, &reg, &native, pad)?);
         }
-        timings.write_s = t.elapsed().as_secs_f64();
+        timings.write_s = Some(t.elapsed().as_secs_f64());
         timings.total_s = t_all.elapsed().as_secs_f64();
         timings.peak_rss_mb = common::peak_rss_mb();
         let report = Report {

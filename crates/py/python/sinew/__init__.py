@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import json
 import os
+import warnings
 from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
@@ -37,6 +38,10 @@ PRESETS: Tuple[str, ...] = tuple(_sinew.PRESETS)
 PARAMETERS: Tuple[str, ...] = tuple(_sinew.PARAMETERS)
 #: The caution every report carries.
 CAUTION: str = _sinew.CAUTION
+#: Default spacing (mm) of the working grid :func:`register` runs on (``--working-spacing``).
+DEFAULT_WORKING_SPACING: float = _sinew.DEFAULT_WORKING_SPACING
+#: Below this body overlap after the initial alignment, :func:`register` warns (as the command line).
+WARN_OVERLAP: float = _sinew.WARN_OVERLAP
 
 __all__ = [
     "register",
@@ -48,6 +53,8 @@ __all__ = [
     "PRESETS",
     "PARAMETERS",
     "CAUTION",
+    "DEFAULT_WORKING_SPACING",
+    "WARN_OVERLAP",
     "__version__",
 ]
 
@@ -234,8 +241,10 @@ class Registration:
     """The result of :func:`register`.
 
     Attributes:
-        field: ``(nx, ny, nz, 3)`` float32 displacement on the fixed grid, pull convention
-            ``warped(x) = moving(x + u(x))``, in :attr:`units`.
+        field: ``(nx, ny, nz, 3)`` float32 displacement on the fixed scan's own (native) grid,
+            pull convention ``warped(x) = moving(x + u(x))``, in :attr:`units`; it includes
+            the linear part of the map (initial alignment and rigid/affine stage), so
+            ``x + u(x)`` may lie outside the fixed grid when the scans' world frames differ.
         units: ``"voxel"`` (along the array axes i, j, k) or ``"mm"`` (along the world axes).
         warped: the moving scan warped onto the fixed grid, ``(nx, ny, nz)`` float32
             (trilinear; outside the moving scan: its minimum).
@@ -248,10 +257,24 @@ class Registration:
         dice: Dice per label before and after (with both label maps), else ``None``.
         affine: the fixed grid's voxel-to-world matrix (4x4, mm).
         report: everything above that is not an array, as ``sinew register``'s report.json
-            (parameters, timings, per-level reports) less the file names.
+            (parameters, scan options, ``working_grid``, ``initial_alignment``,
+            ``linear_map``, timings, per-level reports) less the file names and the QC sheet.
+        linear_map: the linear part of the map (4x4 world mm, fixed point ↦ moving point:
+            initial alignment then rigid/affine stage; the identity when neither ran).
     """
 
-    __slots__ = ("field", "units", "warped", "warped_labels", "jacobian_determinant", "jacobian", "dice", "affine", "report")
+    __slots__ = (
+        "field",
+        "units",
+        "warped",
+        "warped_labels",
+        "jacobian_determinant",
+        "jacobian",
+        "dice",
+        "affine",
+        "report",
+        "linear_map",
+    )
 
     def __init__(self, native: Dict[str, Any], units: str, affine: np.ndarray) -> None:
         self.field: np.ndarray = native["field"]
@@ -263,6 +286,7 @@ class Registration:
         self.jacobian: Dict[str, Any] = self.report["jacobian"]
         self.dice: Optional[Dict[str, Any]] = self.report["dice"]
         self.affine: np.ndarray = affine
+        self.linear_map: np.ndarray = np.array(self.report["linear_map"], dtype=np.float64)
 
     def __repr__(self) -> str:
         j = self.jacobian
@@ -290,16 +314,25 @@ def register(
     preset: str = "default",
     config: Union[None, Mapping[str, Any], str, "os.PathLike[str]"] = None,
     units: str = "voxel",
+    working_spacing: float = DEFAULT_WORKING_SPACING,
+    initial: str = "auto",
+    antialias: bool = True,
     threads: Optional[int] = None,
     progress: Optional[ProgressCallback] = None,
     **params: Any,
 ) -> Registration:
     """Registers ``moving`` to ``fixed``: the same computation as ``sinew register``.
 
+    Each scan is taken on its own grid and in its own world frame. Both are brought to a
+    working grid of about ``working_spacing`` mm; the moving scan is aligned to the fixed
+    one (``initial``, then the rigid/affine stage) before anything is cut to the fixed field
+    of view; the deformable stage runs on the fixed working grid; the field, warped scan and
+    labels are returned on the fixed scan's own grid. A ``UserWarning`` is issued when the
+    bodies still overlap little after the alignment (as the command line's warning).
+
     Args:
         fixed: the fixed scan: a 3-D array or a nibabel image. The field lives on its grid.
-        moving: the moving scan; on another grid (shape or affine) it is first brought onto
-            the fixed grid through world coordinates.
+        moving: the moving scan, on any grid and in any world frame.
         spacing: mm per voxel of array inputs (one number or three; or a pair ``(fixed,
             moving)``); origin 0. Default 1 mm.
         affine: 4x4 voxel-to-world matrix of array inputs (or a pair ``(fixed, moving)``),
@@ -311,6 +344,15 @@ def register(
         config: a dict of parameters, or the path of a TOML parameter file (``sinew register
             --config``), applied over the preset.
         units: units of the returned field: ``"voxel"`` or ``"mm"``.
+        working_spacing: spacing (mm) of the working grid, as ``--working-spacing``: axes
+            finer than 0.8 times this are resampled to it, thicker ones (thick slices) are
+            kept; ``0`` registers on the fixed scan's own grid.
+        initial: initial alignment of scans in different world frames, from their body
+            masks, as ``--initial``: ``"auto"`` (when the bodies overlap little or their
+            centres lie far apart), ``"centres"``, ``"axes"`` (centres and principal axes)
+            or ``"off"``.
+        antialias: smooth a scan before bringing it to a coarser working grid
+            (``False`` = ``--no-antialias``).
         threads: worker threads (default: all cores), as ``-j`` on the command line.
         progress: called as ``progress(level, stage, iteration, iterations)`` while the work
             runs (``stage`` is "pyramid", "descriptors", "optimise" or "jacobian"; level 0 is
@@ -357,6 +399,10 @@ def register(
     params_json = _to_json(params, "params")
     if progress is not None and not callable(progress):
         raise ValueError("progress: must be callable as progress(level, stage, iteration, iterations)")
+    if isinstance(working_spacing, bool) or not isinstance(working_spacing, (int, float, np.integer, np.floating)):
+        raise ValueError(f"working_spacing: must be a number of mm, got {working_spacing!r}")
+    if not isinstance(antialias, (bool, np.bool_)):
+        raise ValueError(f"antialias: must be True or False, got {antialias!r}")
     native = _sinew.register(
         f_data,
         f_aff,
@@ -370,10 +416,22 @@ def register(
         config_name=config_name,
         params_json=params_json,
         units=units,
+        working_spacing=float(working_spacing),
+        initial=str(initial),
+        antialias=bool(antialias),
         threads=_threads(threads),
         progress=progress,
     )
-    return Registration(native, units, f_aff)
+    reg = Registration(native, units, f_aff)
+    overlap = reg.report["initial_alignment"].get("overlap_final")
+    if overlap is not None and overlap < WARN_OVERLAP:
+        warnings.warn(
+            f"fixed and moving: the bodies overlap only {100 * overlap:.0f} % after the initial alignment; "
+            "check that both scans show the same part of the body",
+            UserWarning,
+            stacklevel=2,
+        )
+    return reg
 
 
 def _threads(threads: Optional[int]) -> Optional[int]:

@@ -10,6 +10,8 @@ __version__: str
 PRESETS: List[str]
 PARAMETERS: List[str]
 CAUTION: str
+DEFAULT_WORKING_SPACING: float
+WARN_OVERLAP: float
 
 def register(
     fixed: npt.NDArray[np.float32],
@@ -24,6 +26,9 @@ def register(
     config_name: str = "config",
     params_json: str = "{}",
     units: str = "voxel",
+    working_spacing: float = 2.0,
+    initial: str = "auto",
+    antialias: bool = True,
     threads: Optional[int] = None,
     progress: Optional[Callable[[int, str, int, int], Any]] = None,
 ) -> Dict[str, Any]: ...
