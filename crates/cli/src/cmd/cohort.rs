@@ -25,7 +25,7 @@ use sinew_cohort::files::{
 pub use sinew_cohort::{manifest, table, Pair, Shard, Subject};
 
 use crate::cmd::common;
-use crate::cmd::register::{ParamArgs, PresetArgs, RegisterArgs, UnitsArg};
+use crate::cmd::register::{PairRequest, ParamArgs, PresetArgs, UnitsArg};
 use crate::cmd::score::FieldFormat;
 use crate::ui;
 use sinew_cohort::{FieldFormat as Format, PairFiles};
@@ -292,8 +292,9 @@ pub(crate) fn register_params(args: &CohortArgs) -> anyhow::Result<Option<sinew_
     ParamArgs::base(&args.params, args.diffeomorphic).params().map(Some)
 }
 
-fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> RegisterArgs {
-    RegisterArgs {
+/// The registration request for pair `f` → `m` into `dir`.
+fn pair_request(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> anyhow::Result<PairRequest> {
+    Ok(PairRequest {
         fixed: f.image.clone(),
         moving: m.image.clone(),
         out: dir.to_path_buf(),
@@ -303,14 +304,13 @@ fn register_args(args: &CohortArgs, f: &Subject, m: &Subject, dir: &Path) -> Reg
         field_units: UnitsArg::Mm,
         npy: false,
         out_format: crate::cmd::register::OutFormat::NiiGz,
-        params: ParamArgs::base(&args.params, args.diffeomorphic),
-        scan: args.scan.clone(),
-        threads: None,
-        no_qc: false,
+        scan: args.scan.options()?,
+        nan: args.scan.nan_policy()?,
+        qc: true,
         qc_window: args.qc_window,
         label_names: names_file(args),
         quiet: true,
-    }
+    })
 }
 
 /// The cohort's `labels.json` (beside the manifest, or in the --all-pairs folder) when there
@@ -363,7 +363,7 @@ impl Ctx<'_> {
                         let _ = std::fs::remove_file(&score_path);
                         remove_stray_temporaries(&dir);
                         let params = self.params.as_ref().expect("parameters when registering");
-                        let report = crate::cmd::register::run_pair(&register_args(self.args, f, m, &dir), params)?;
+                        let report = crate::cmd::register::run_pair(&pair_request(self.args, f, m, &dir)?, params)?;
                         outcome = Outcome::Done;
                         report.timings.register_s
                     }

@@ -499,32 +499,92 @@ pub struct Report {
     pub outputs: Vec<String>,
 }
 
+/// One registration as `register` and `cohort` ask for it: the files, the outputs and how the
+/// scans are brought together, with every option already parsed and checked.
+#[derive(Debug, Clone)]
+pub struct PairRequest {
+    /// The fixed scan (the field lives on its grid).
+    pub fixed: PathBuf,
+    /// The moving scan.
+    pub moving: PathBuf,
+    /// Output folder (created if needed).
+    pub out: PathBuf,
+    /// Label map of the fixed scan (Dice before/after in the report).
+    pub fixed_labels: Option<PathBuf>,
+    /// Label map of the moving scan (warped into `warped_labels`).
+    pub moving_labels: Option<PathBuf>,
+    /// Mask on the fixed grid (non-zero = inside the data term).
+    pub mask: Option<PathBuf>,
+    /// Units of the vectors in the field file.
+    pub field_units: UnitsArg,
+    /// Also write `field.npy`.
+    pub npy: bool,
+    /// File format of the image outputs.
+    pub out_format: OutFormat,
+    /// Working grid, initial alignment and anti-aliasing.
+    pub scan: ScanOptions,
+    /// What to do with NaN or infinite voxels.
+    pub nan: common::NanPolicy,
+    /// Draw `qc.png`.
+    pub qc: bool,
+    /// Grey window of `qc.png`.
+    pub qc_window: sinew_qc::Window,
+    /// Label names for the QC sheet's legend (JSON), else `labels.json` beside the fixed labels.
+    pub label_names: Option<PathBuf>,
+    /// No progress bar and no summary.
+    pub quiet: bool,
+}
+
+impl RegisterArgs {
+    /// The request these arguments make (the working-grid and NaN options checked).
+    pub fn request(&self) -> anyhow::Result<PairRequest> {
+        Ok(PairRequest {
+            fixed: self.fixed.clone(),
+            moving: self.moving.clone(),
+            out: self.out.clone(),
+            fixed_labels: self.fixed_labels.clone(),
+            moving_labels: self.moving_labels.clone(),
+            mask: self.mask.clone(),
+            field_units: self.field_units,
+            npy: self.npy,
+            out_format: self.out_format,
+            scan: self.scan.options()?,
+            nan: self.scan.nan_policy()?,
+            qc: !self.no_qc,
+            qc_window: self.qc_window,
+            label_names: self.label_names.clone(),
+            quiet: self.quiet,
+        })
+    }
+}
+
 /// Runs `sinew register`.
 pub fn run(args: RegisterArgs) -> anyhow::Result<()> {
     let params = args.params.params()?;
-    common::with_threads(args.threads, || run_pair(&args, &params).map(|_| ()))
+    let request = args.request()?;
+    common::with_threads(args.threads, || run_pair(&request, &params).map(|_| ()))
 }
 
-/// Registers one pair and writes its outputs; returns the report (used by the demo too).
-pub fn run_pair(args: &RegisterArgs, params: &RegParams) -> anyhow::Result<Report> {
+/// Registers one pair and writes its outputs; returns the report (used by `cohort` too).
+pub fn run_pair(args: &PairRequest, params: &RegParams) -> anyhow::Result<Report> {
     let t_all = Instant::now();
-    let scan_opts = args.scan.options()?;
+    let scan_opts = &args.scan;
     let inputs = Inputs::load_with(
         &args.fixed,
         &args.moving,
         args.fixed_labels.as_deref(),
         args.moving_labels.as_deref(),
         args.mask.as_deref(),
-        args.scan.nan_policy()?,
+        args.nan,
     )?;
     let mut timings = sinew_solve::Timings { load_s: Some(t_all.elapsed().as_secs_f64()), ..Default::default() };
     let mut out_paths =
-        OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, !args.no_qc, args.out_format.extension());
+        OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, args.qc, args.out_format.extension());
     out_paths.affine = Some(args.out.join("affine.json"));
     common::prepare_out_dir(&args.out, &out_paths.all(), &inputs.paths())?;
     let moving_resampled = !inputs.fixed.grid.same_as(&inputs.moving.grid, 1e-3);
 
-    let reg = register_with_progress(&inputs.fixed, &inputs.moving, inputs.mask.as_ref(), params, &scan_opts, args)?;
+    let reg = register_with_progress(&inputs.fixed, &inputs.moving, inputs.mask.as_ref(), params, scan_opts, args)?;
     timings.record(&reg);
     timings.register_s = t_all.elapsed().as_secs_f64();
     let linear_map = sinew_grid::Affine::from_4x4(reg.linear_map);
@@ -650,7 +710,7 @@ fn register_with_progress(
     mask: Option<&LabelMap>,
     params: &RegParams,
     scan: &ScanOptions,
-    args: &RegisterArgs,
+    args: &PairRequest,
 ) -> anyhow::Result<ScanRegistration> {
     let total: usize = params.iterations.iter().sum();
     let pb = ui::progress(total as u64, "registering", args.quiet);
@@ -785,7 +845,7 @@ fn write_native_field(path: &Path, field: &sinew_solve::NativeField, units: Fiel
 /// map at working resolution, with that field and its Jacobian. When the registration ran on
 /// the fixed grid itself, the native outputs are drawn.
 fn draw_qc(
-    args: &RegisterArgs,
+    args: &PairRequest,
     inputs: &Inputs,
     reg: &ScanRegistration,
     native: &sinew_solve::NativeOutputs,
