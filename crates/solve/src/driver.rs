@@ -40,6 +40,10 @@ pub struct Progress {
     pub iteration: usize,
     /// Iterations planned for the stage.
     pub iterations: usize,
+    /// Iterations planned over all optimised levels of this registration:
+    /// [`RegParams::planned_iterations`] of the parameters after [`RegParams::for_spacing`]
+    /// (the length of a progress bar; levels stopped early by the tolerance run fewer).
+    pub planned_iterations: usize,
 }
 
 /// What happened at one level.
@@ -150,7 +154,14 @@ pub fn register(
     let moving = aligned.as_ref().unwrap_or(moving);
     let affine_s = t0.elapsed().as_secs_f64();
     let t0 = Instant::now();
-    observer(Progress { level: params.levels - 1, stage: Stage::Pyramid, iteration: 0, iterations: 0 });
+    let planned_iterations = params.planned_iterations();
+    observer(Progress {
+        level: params.levels - 1,
+        stage: Stage::Pyramid,
+        iteration: 0,
+        iterations: 0,
+        planned_iterations,
+    });
     let (fixed_n, moving_n) = prepare_intensities(fixed, moving, params.similarity);
     let fixed_pyr = pyramid::build(&fixed_n, params.levels);
     let moving_pyr = pyramid::build(&moving_n, params.levels);
@@ -165,7 +176,7 @@ pub fn register(
         let desc_grid = fixed_pyr[level].grid.clone();
         let stride = params.stride_for(step, fixed.grid.spacing());
         let lattice = desc_grid.strided(stride);
-        observer(Progress { level, stage: Stage::Descriptors, iteration: 0, iterations: 0 });
+        observer(Progress { level, stage: Stage::Descriptors, iteration: 0, iterations: 0, planned_iterations });
         let t = Instant::now();
         let (fd, md) = match params.similarity {
             Similarity::MindSsc => {
@@ -199,11 +210,16 @@ pub fn register(
             Model::Dense => Box::new(GaussianDense::new(lattice.shape(), params.update_sigma as f64)),
             Model::Bspline => Box::new(BsplineModel::new(&lattice, params.grid_spacing_mm, params.bending)),
         };
-        let plan = LevelPlan { iterations: params.iterations[step], step_size: params.step_size[step], level };
+        let plan = LevelPlan {
+            iterations: params.iterations[step],
+            step_size: params.step_size[step],
+            level,
+            planned: planned_iterations,
+        };
         let outcome = optimise_level(&problem, &mut param, init, &plan, params, observer)?;
         let optimise_s = t.elapsed().as_secs_f64();
         drop((fd, md));
-        observer(Progress { level, stage: Stage::Jacobian, iteration: 0, iterations: 0 });
+        observer(Progress { level, stage: Stage::Jacobian, iteration: 0, iterations: 0, planned_iterations });
         let t = Instant::now();
         let det = jacobian_determinant(&outcome.field);
         let jac = jacobian_stats(&det, None);
@@ -242,6 +258,8 @@ struct LevelPlan {
     iterations: usize,
     step_size: f32,
     level: usize,
+    /// Iterations planned over all levels (for [`Progress::planned_iterations`]).
+    planned: usize,
 }
 
 struct LevelOutcome {
@@ -372,6 +390,7 @@ fn optimise_level(
                     stage: Stage::Optimise,
                     iteration: iterations,
                     iterations: plan.iterations,
+                    planned_iterations: plan.planned,
                 });
             }
         }
@@ -386,6 +405,7 @@ fn optimise_level(
                 stage: Stage::Optimise,
                 iteration: plan.iterations,
                 iterations: plan.iterations,
+                planned_iterations: plan.planned,
             });
         }
     }
@@ -495,4 +515,33 @@ pub(crate) fn ensure_finite(fixed: &Image, moving: &Image) -> Result<(), SolveEr
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn progress_plans_only_the_levels_that_run() {
+        // A 4 mm scan with `levels_for_mm` = 2 drops round(log2(4 / 2)) = 1 coarsest level
+        // (`RegParams::for_spacing`): the planned total is the other three levels' iterations.
+        let grid = Grid::axis_aligned([24, 20, 28], [4.0; 3], [0.0; 3]);
+        let pattern = |shift: f32| {
+            let a = ndarray::Array3::from_shape_fn((24, 20, 28), |(i, j, k)| {
+                ((i as f32 + shift) * 0.4).sin() + (j as f32 * 0.3).cos() + (k as f32 * 0.25).sin()
+            });
+            Image::new(grid.clone(), a).unwrap()
+        };
+        let params = RegParams { iterations: vec![5, 4, 3, 2], ..RegParams::default() };
+        assert_eq!(params.levels, 4);
+        let mut events = Vec::new();
+        let reg = register(&pattern(0.0), &pattern(0.5), None, &params, &mut |p| events.push(p)).unwrap();
+        assert_eq!(reg.levels.len(), 3);
+        assert!(!events.is_empty());
+        assert!(events.iter().all(|p| p.planned_iterations == 4 + 3 + 2), "{events:?}");
+        // The per-level plans of the optimisation events add up to the same total.
+        let per_level: std::collections::BTreeMap<usize, usize> =
+            events.iter().filter(|p| p.stage == Stage::Optimise).map(|p| (p.level, p.iterations)).collect();
+        assert_eq!(per_level.values().sum::<usize>(), 4 + 3 + 2);
+    }
 }

@@ -263,6 +263,12 @@ impl RegParams {
         p
     }
 
+    /// Iterations planned over all optimised levels: the sum of `iterations` (for a scan,
+    /// apply [`RegParams::for_spacing`] first, as the driver does).
+    pub fn planned_iterations(&self) -> usize {
+        self.iterations.iter().sum()
+    }
+
     /// Number of optimised levels: `levels − finest_level`.
     pub fn optimised_levels(&self) -> usize {
         self.levels.saturating_sub(self.finest_level)

@@ -712,12 +712,14 @@ fn register_with_progress(
     scan: &ScanOptions,
     args: &PairRequest,
 ) -> anyhow::Result<ScanRegistration> {
-    let total: usize = params.iterations.iter().sum();
-    let pb = ui::progress(total as u64, "registering", args.quiet);
+    // The driver drops the coarsest levels of coarse scans (`RegParams::for_spacing`): the
+    // bar's length is the plan it reports with every event.
+    let pb = ui::progress(params.planned_iterations() as u64, "registering", args.quiet);
     let mut done_before = 0usize;
     let mut last_level = usize::MAX;
     let mut level_iters = 0usize;
     let reg = sinew_solve::register_scans(fixed, moving, mask, params, scan, &mut |p| {
+        pb.set_length(p.planned_iterations as u64);
         if p.level != last_level && p.stage == Stage::Descriptors {
             done_before += level_iters;
             level_iters = 0;
