@@ -92,14 +92,14 @@ impl FoldPenalty {
         let (a0, a1, a2) = (r[0][0] * cx, r[0][1] * cy, r[0][2]);
         let (b0, b1, b2) = (r[1][0] * cx, r[1][1] * cy, r[1][2]);
         let (c0, c1, c2) = (r[2][0] * cx, r[2][1] * cy, r[2][2]);
-        let (uxm, uxp, uym, uyp, uc) = (row(0, xm, j), row(0, xp, j), row(0, i, ym), row(0, i, yp), row(0, i, j));
-        let (vxm, vxp, vym, vyp, vc) = (row(1, xm, j), row(1, xp, j), row(1, i, ym), row(1, i, yp), row(1, i, j));
-        let (wxm, wxp, wym, wyp, wc) = (row(2, xm, j), row(2, xp, j), row(2, i, ym), row(2, i, yp), row(2, i, j));
+        let (u_im, u_ip, u_jm, u_jp, u_c) = (row(0, xm, j), row(0, xp, j), row(0, i, ym), row(0, i, yp), row(0, i, j));
+        let (v_im, v_ip, v_jm, v_jp, v_c) = (row(1, xm, j), row(1, xp, j), row(1, i, ym), row(1, i, yp), row(1, i, j));
+        let (w_im, w_ip, w_jm, w_jp, w_c) = (row(2, xm, j), row(2, xp, j), row(2, i, ym), row(2, i, yp), row(2, i, j));
         for k in 0..nz - 1 {
             let m = [
-                [1.0 + a0 * (uxp[k] - uxm[k]), 0.0 + a1 * (uyp[k] - uym[k]), 0.0 + a2 * (uc[k + 1] - uc[k])],
-                [0.0 + b0 * (vxp[k] - vxm[k]), 1.0 + b1 * (vyp[k] - vym[k]), 0.0 + b2 * (vc[k + 1] - vc[k])],
-                [0.0 + c0 * (wxp[k] - wxm[k]), 0.0 + c1 * (wyp[k] - wym[k]), 1.0 + c2 * (wc[k + 1] - wc[k])],
+                [1.0 + a0 * (u_ip[k] - u_im[k]), 0.0 + a1 * (u_jp[k] - u_jm[k]), 0.0 + a2 * (u_c[k + 1] - u_c[k])],
+                [0.0 + b0 * (v_ip[k] - v_im[k]), 1.0 + b1 * (v_jp[k] - v_jm[k]), 0.0 + b2 * (v_c[k + 1] - v_c[k])],
+                [0.0 + c0 * (w_ip[k] - w_im[k]), 0.0 + c1 * (w_jp[k] - w_jm[k]), 1.0 + c2 * (w_c[k + 1] - w_c[k])],
             ];
             out[k] = det3(&m);
         }
