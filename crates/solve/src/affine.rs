@@ -237,12 +237,14 @@ impl Model {
     }
 }
 
-/// One level's descriptors and mask, and the stride of the fixed voxels compared.
+/// One level's descriptors and mask, the stride of the fixed voxels compared and their
+/// number `N` (fixed for the level, so counted once).
 struct Level {
     fixed: Descriptor,
     moving: Descriptor,
     mask: Option<Vec<bool>>,
     stride: usize,
+    count: usize,
 }
 
 /// The smallest stride `s ≥ 1` with `Π_d ⌈n_d / s⌉ ≤ max_points`.
@@ -255,6 +257,20 @@ fn point_stride(shape: [usize; 3], max_points: usize) -> usize {
 }
 
 impl Level {
+    /// A level comparing every `s`-th fixed voxel along each axis, `s` from
+    /// [`point_stride`] (inside `mask` when given).
+    fn new(fixed: Descriptor, moving: Descriptor, mask: Option<Vec<bool>>, max_points: usize) -> Level {
+        let [nx, ny, nz] = fixed.grid.shape();
+        let s = point_stride([nx, ny, nz], max_points);
+        let count = (0..nx)
+            .step_by(s)
+            .flat_map(|i| (0..ny).step_by(s).flat_map(move |j| (0..nz).step_by(s).map(move |k| (i * ny + j) * nz + k)))
+            .filter(|&n| mask.as_ref().map_or(true, |m| m[n]))
+            .count()
+            .max(1);
+        Level { fixed, moving, mask, stride: s, count }
+    }
+
     /// `E(A)`, with `∂E/∂L` and `∂E/∂t` (see the module docs). Parallel over `i` slabs; slab
     /// sums are added in slab order (thread-count independent).
     fn evaluate(&self, a: &Affine, centre: [f64; 3], g_l: &mut [[f64; 3]; 3], g_t: &mut [f64; 3]) -> f64 {
@@ -269,12 +285,7 @@ impl Level {
         let minv = mg.inverse_affine().linear();
         let s = self.stride;
         let compared = |n: usize| self.mask.as_ref().map_or(true, |m| m[n]);
-        let count = (0..nx)
-            .step_by(s)
-            .flat_map(|i| (0..ny).step_by(s).flat_map(move |j| (0..nz).step_by(s).map(move |k| (i * ny + j) * nz + k)))
-            .filter(|&n| compared(n))
-            .count()
-            .max(1);
+        let count = self.count;
         let scale = 2.0 / (count * c) as f64;
         let slabs: Vec<(f64, [f64; 12])> = (0..nx)
             .into_par_iter()
@@ -410,12 +421,8 @@ pub fn estimate(
             break;
         }
         let (fd, md) = rayon::join(|| mind_ssc(&fixed_pyr[l], &params.mind), || mind_ssc(&moving_pyr[l], &params.mind));
-        let level = Level {
-            fixed: fd,
-            moving: md,
-            mask: mask.map(|m| resample::resample_labels(m, fg).as_slice().iter().map(|&v| v != 0).collect()),
-            stride: point_stride(fg.shape(), params.max_points),
-        };
+        let level_mask = mask.map(|m| resample::resample_labels(m, fg).as_slice().iter().map(|&v| v != 0).collect());
+        let level = Level::new(fd, md, level_mask, params.max_points);
         let iters = params.iterations[step.min(params.iterations.len() - 1)];
         let lr0 = params.step_mm[step.min(params.step_mm.len() - 1)];
         step += 1;
@@ -577,7 +584,7 @@ mod tests {
             0.0,
         );
         let mind = MindParams::default();
-        let level = Level { fixed: mind_ssc(&fixed, &mind), moving: mind_ssc(&img, &mind), mask: None, stride: 1 };
+        let level = Level::new(mind_ssc(&fixed, &mind), mind_ssc(&img, &mind), None, usize::MAX);
         for mode in [AffineMode::Rigid, AffineMode::Affine] {
             let model = Model { mode, centre: [1.0, -2.0, 0.5] };
             let mut th: Vec<f64> = (0..model.len()).map(|i| 0.7 * ((i as f64) * 1.3).sin()).collect();

@@ -210,12 +210,7 @@ pub fn register(
             Model::Dense => Box::new(GaussianDense::new(lattice.shape(), params.update_sigma as f64)),
             Model::Bspline => Box::new(BsplineModel::new(&lattice, params.grid_spacing_mm, params.bending)),
         };
-        let plan = LevelPlan {
-            iterations: params.iterations[step],
-            step_size: params.step_size[step],
-            level,
-            planned: planned_iterations,
-        };
+        let plan = LevelPlan { iterations: params.iterations[step], step_size: params.step_size[step], level };
         let outcome = optimise_level(&problem, &mut param, init, &plan, params, observer)?;
         let optimise_s = t.elapsed().as_secs_f64();
         drop((fd, md));
@@ -258,8 +253,6 @@ struct LevelPlan {
     iterations: usize,
     step_size: f32,
     level: usize,
-    /// Iterations planned over all levels (for [`Progress::planned_iterations`]).
-    planned: usize,
 }
 
 struct LevelOutcome {
@@ -390,7 +383,7 @@ fn optimise_level(
                     stage: Stage::Optimise,
                     iteration: iterations,
                     iterations: plan.iterations,
-                    planned_iterations: plan.planned,
+                    planned_iterations: params.planned_iterations(),
                 });
             }
         }
@@ -405,7 +398,7 @@ fn optimise_level(
                 stage: Stage::Optimise,
                 iteration: plan.iterations,
                 iterations: plan.iterations,
-                planned_iterations: plan.planned,
+                planned_iterations: params.planned_iterations(),
             });
         }
     }

@@ -528,7 +528,6 @@ mod tests {
         let shape = [7, 6, 5];
         let fixed = smooth_volume(shape, 12, 0.0);
         let moving = smooth_volume(shape, 12, 0.4);
-        let mut checked = 0;
         for t in 0..500 {
             let t = t as f32;
             let q = [8.0 * (0.37 * t).sin() + 3.0, 7.0 * (0.53 * t).cos() + 2.5, 6.0 * (0.71 * t).sin() + 2.0];
@@ -541,9 +540,7 @@ mod tests {
             for d in 0..3 {
                 assert_eq!(a.1[d].to_bits(), b.1[d].to_bits(), "gradient {d} at {q:?}");
             }
-            checked += 1;
         }
-        assert_eq!(checked, 500);
     }
 
     #[test]
