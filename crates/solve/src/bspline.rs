@@ -70,21 +70,7 @@ impl Parametrisation for BsplineModel {
 mod tests {
     use super::*;
     use crate::kernel::Problem;
-
-    fn smooth_volume(shape: [usize; 3], c: usize, phase: f32) -> Vec<f32> {
-        let mut v = Vec::with_capacity(shape.iter().product::<usize>() * c);
-        for i in 0..shape[0] {
-            for j in 0..shape[1] {
-                for k in 0..shape[2] {
-                    for ch in 0..c {
-                        let x = i as f32 * 0.4 + ch as f32 * 0.7 + phase;
-                        v.push(x.sin() * (j as f32 * 0.3).cos() + 0.2 * (k as f32 * (0.35 + ch as f32 * 0.05)).sin());
-                    }
-                }
-            }
-        }
-        v
-    }
+    use crate::testing::{central_difference, smooth_volume};
 
     #[test]
     fn registration_objective_gradient_matches_central_finite_differences() {
@@ -137,13 +123,7 @@ mod tests {
         let gmax = grad.iter().fold(0.0f64, |a, &g| a.max(g.abs() as f64));
         eprintln!("largest gradient entry {gmax:.3e}");
         for idx in [0, 40, 77, 130, m / 3 + 5, m / 2, m - 9] {
-            let orig = theta[idx];
-            theta[idx] = orig + h;
-            let ep = energy(&mut model, &theta, &mut scratch);
-            theta[idx] = orig - h;
-            let em = energy(&mut model, &theta, &mut scratch);
-            theta[idx] = orig;
-            let fd = (ep - em) / (2.0 * h as f64);
+            let fd = central_difference(&mut theta, idx, h, |th| energy(&mut model, th, &mut scratch));
             eprintln!("{idx}: fd {fd:.6e} analytic {:.6e}", grad[idx]);
             assert!(
                 (fd - grad[idx] as f64).abs() <= 1e-2 * fd.abs() + 1e-3 * gmax,

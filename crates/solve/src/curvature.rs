@@ -150,6 +150,7 @@ fn add_laplacian_slab(l: &[f32], shape: [usize; 3], c: [f32; 3], i: usize, out: 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::testing::central_difference;
 
     fn field(shape: [usize; 3], f: impl Fn(usize, f64, f64, f64) -> f64) -> Vec<f32> {
         let n: usize = shape.iter().product();
@@ -206,16 +207,10 @@ mod tests {
         let mut p = CurvaturePenalty::new(shape, h);
         let mut g = vec![0.0; u.len()];
         p.evaluate(&u, 0.8, &mut g);
-        let eps = 1e-2f32;
+        let mut scratch = vec![0.0; u.len()];
+        let mut u = u;
         for idx in [0, 7, 31, 59, 60, 119, 120 + 17, 3 * 120 - 1] {
-            let mut up = u.clone();
-            up[idx] += eps;
-            let mut dn = u.clone();
-            dn[idx] -= eps;
-            let mut scratch = vec![0.0; u.len()];
-            let ep = p.evaluate(&up, 0.8, &mut scratch);
-            let em = p.evaluate(&dn, 0.8, &mut scratch);
-            let fd = (ep - em) / (2.0 * eps as f64);
+            let fd = central_difference(&mut u, idx, 1e-2, |u| p.evaluate(u, 0.8, &mut scratch));
             approx::assert_abs_diff_eq!(g[idx] as f64, fd, epsilon = 2e-3 * (1.0 + fd.abs()));
         }
     }

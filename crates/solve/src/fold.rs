@@ -197,6 +197,7 @@ fn cofactors(m: &[[f32; 3]; 3]) -> [[f32; 3]; 3] {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::testing::central_difference;
 
     /// A field with folds: a strong local twist and compression.
     fn folding_field(shape: [usize; 3]) -> Vec<f32> {
@@ -264,13 +265,7 @@ mod tests {
         let h = 1e-3f32;
         let mut checked = 0;
         for idx in [0usize, 7, 38, 101, 150, 209, n + 17, n + 88, 2 * n + 3, 2 * n + 140, 3 * n - 1] {
-            let orig = u[idx];
-            u[idx] = orig + h;
-            let ep = p.evaluate(&u, 2.0, 0.5, &mut scratch);
-            u[idx] = orig - h;
-            let em = p.evaluate(&u, 2.0, 0.5, &mut scratch);
-            u[idx] = orig;
-            let fd = (ep - em) / (2.0 * h as f64);
+            let fd = central_difference(&mut u, idx, h, |u| p.evaluate(u, 2.0, 0.5, &mut scratch));
             if fd.abs() > 1e-4 {
                 checked += 1;
             }

@@ -357,21 +357,7 @@ unsafe fn fold(p8: std::arch::x86_64::__m256, p4: std::arch::x86_64::__m128) -> 
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    fn smooth_volume(shape: [usize; 3], c: usize, phase: f32) -> Vec<f32> {
-        let mut v = Vec::with_capacity(shape.iter().product::<usize>() * c);
-        for i in 0..shape[0] {
-            for j in 0..shape[1] {
-                for k in 0..shape[2] {
-                    for ch in 0..c {
-                        let x = i as f32 * 0.5 + ch as f32 + phase;
-                        v.push((x).sin() * (j as f32 * 0.3).cos() + 0.1 * (k as f32 * (0.4 + ch as f32 * 0.1)).sin());
-                    }
-                }
-            }
-        }
-        v
-    }
+    use crate::testing::{central_difference, smooth_volume};
 
     #[test]
     fn gradient_matches_central_finite_differences() {
@@ -405,16 +391,9 @@ mod tests {
         let mut sums = Vec::new();
         p.evaluate(&u, &mut g, &mut sums);
         let mut scratch = vec![0.0; u.len()];
-        let h = 1e-3f32;
         let mut worst = 0.0f64;
         for &idx in indices {
-            let orig = u[idx];
-            u[idx] = orig + h;
-            let ep = p.evaluate(&u, &mut scratch, &mut sums).total;
-            u[idx] = orig - h;
-            let em = p.evaluate(&u, &mut scratch, &mut sums).total;
-            u[idx] = orig;
-            let fd = (ep - em) / (2.0 * h as f64);
+            let fd = central_difference(&mut u, idx, 1e-3, |u| p.evaluate(u, &mut scratch, &mut sums).total);
             worst = worst.max((fd - g[idx] as f64).abs() / fd.abs().max(1e-4));
         }
         worst
@@ -450,15 +429,6 @@ mod tests {
         let mut scratch = vec![0.0; 3 * n];
         let mut sums2 = Vec::new();
         let mut energy = |u: &[f32]| p.evaluate(u, &mut scratch, &mut sums2).total;
-        let fd = |energy: &mut dyn FnMut(&[f32]) -> f64, u: &mut Vec<f32>, at: usize| {
-            let orig = u[at];
-            u[at] = orig + h;
-            let ep = energy(u);
-            u[at] = orig - h;
-            let em = energy(u);
-            u[at] = orig;
-            (ep - em) / (2.0 * h as f64)
-        };
         let mut checked = 0;
         for axis in 0..3 {
             let len = shape[axis] as f32;
@@ -474,9 +444,9 @@ mod tests {
                     let want = if a == axis {
                         let mut v = u.clone();
                         v[at] = inside - x[axis] as f32;
-                        fd(&mut energy, &mut v, at)
+                        central_difference(&mut v, at, h, &mut energy)
                     } else {
-                        fd(&mut energy, &mut u, at)
+                        central_difference(&mut u, at, h, &mut energy)
                     };
                     let err = (want - g[at] as f64).abs() / want.abs().max(1e-4);
                     assert!(err < 2e-2, "axis {axis} at {outside}, component {a}: {} vs {want}", g[at]);

@@ -21,6 +21,8 @@ mod params;
 pub mod scans;
 mod simd;
 pub mod svf;
+#[cfg(test)]
+mod testing;
 
 pub use driver::{local_standardised, register, EnergyReport, LevelReport, Progress, Registration, Stage};
 pub use error::SolveError;
