@@ -207,49 +207,36 @@ fn resize_last<T: Clone>(v: &mut Vec<T>, n: usize) {
     }
 }
 
-/// The inputs of one registration.
-pub struct Inputs {
-    /// Fixed scan: the field lives on its grid.
-    pub fixed: Image,
-    /// Moving scan, on its own grid.
-    pub moving: Image,
-    /// Labels of the fixed scan (on its grid).
-    pub fixed_labels: Option<LabelMap>,
-    /// Labels of the moving scan (on its grid).
-    pub moving_labels: Option<LabelMap>,
-    /// Mask on the fixed grid (non-zero = inside).
-    pub mask: Option<LabelMap>,
-}
+/// The inputs of one registration (the command line's, [`sinew_solve::PairScans`]).
+pub use sinew_solve::PairScans as Inputs;
 
-impl Inputs {
-    /// The checks `sinew register` makes after reading: finite, non-constant scans; labels
-    /// and mask on their scan's grid and not empty.
-    pub fn check(&self) -> Result<(), ApiError> {
-        check_scan(&self.fixed, "fixed")?;
-        check_scan(&self.moving, "moving")?;
-        for (l, what, img, img_what) in [
-            (&self.fixed_labels, "fixed_labels", &self.fixed, "fixed"),
-            (&self.moving_labels, "moving_labels", &self.moving, "moving"),
-            (&self.mask, "mask", &self.fixed, "fixed"),
-        ] {
-            if let Some(l) = l {
-                check_on(l, what, img, img_what)?;
-            }
+/// The checks `sinew register` makes after reading: finite, non-constant scans; labels and
+/// mask on their scan's grid and not empty.
+pub fn check_inputs(inputs: &Inputs) -> Result<(), ApiError> {
+    check_scan(&inputs.fixed, "fixed")?;
+    check_scan(&inputs.moving, "moving")?;
+    for (l, what, img, img_what) in [
+        (&inputs.fixed_labels, "fixed_labels", &inputs.fixed, "fixed"),
+        (&inputs.moving_labels, "moving_labels", &inputs.moving, "moving"),
+        (&inputs.mask, "mask", &inputs.fixed, "fixed"),
+    ] {
+        if let Some(l) = l {
+            check_on(l, what, img, img_what)?;
         }
-        if let Some(m) = &self.mask {
-            if m.as_slice().iter().all(|&v| v == 0) {
-                return Err(input("mask: the mask is empty (no non-zero voxel)"));
-            }
-        }
-        for (l, what) in [(&self.fixed_labels, "fixed_labels"), (&self.moving_labels, "moving_labels")] {
-            if let Some(l) = l {
-                if l.as_slice().iter().all(|&v| v == 0) {
-                    return Err(input(format!("{what}: the label map is empty (every voxel is 0, no label to score)")));
-                }
-            }
-        }
-        Ok(())
     }
+    if let Some(m) = &inputs.mask {
+        if m.as_slice().iter().all(|&v| v == 0) {
+            return Err(input("mask: the mask is empty (no non-zero voxel)"));
+        }
+    }
+    for (l, what) in [(&inputs.fixed_labels, "fixed_labels"), (&inputs.moving_labels, "moving_labels")] {
+        if let Some(l) = l {
+            if l.as_slice().iter().all(|&v| v == 0) {
+                return Err(input(format!("{what}: the label map is empty (every voxel is 0, no label to score)")));
+            }
+        }
+    }
+    Ok(())
 }
 
 /// The report of one registration: the fields of `sinew register`'s `report.json` less the
@@ -321,7 +308,7 @@ pub fn register(
     observer: &mut dyn FnMut(Progress),
 ) -> Result<Output, ApiError> {
     let t_all = Instant::now();
-    inputs.check()?;
+    check_inputs(inputs)?;
     params.validate().map_err(|e| ApiError::Parameter(format!("parameters: {e}")))?;
     if !(scan.working_spacing_mm.is_finite() && scan.working_spacing_mm >= 0.0) {
         return Err(input(format!(
@@ -335,14 +322,7 @@ pub fn register(
     timings.record(&reg);
     timings.register_s = t_all.elapsed().as_secs_f64();
 
-    let t = Instant::now();
-    let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
-    let native = sinew_solve::native_outputs(&reg.field, &inputs.moving, pad, inputs.moving_labels.as_ref());
-    timings.warp_s = t.elapsed().as_secs_f64();
-
-    let t = Instant::now();
-    let jacobian = sinew_transform::jacobian_stats(&native.jacdet, None);
-    timings.jacobian_s = t.elapsed().as_secs_f64();
+    let (native, jacobian) = reg.native_results(&inputs.moving, inputs.moving_labels.as_ref(), &mut timings);
 
     let dice = match (&inputs.fixed_labels, &inputs.moving_labels, &native.warped_labels) {
         (Some(f), Some(m), Some(w)) => Some(dice_report(f, m, w)?),

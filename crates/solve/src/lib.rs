@@ -29,4 +29,4 @@ pub use error::SolveError;
 pub use frames::InitialMode;
 pub use native::{native_outputs, NativeField, NativeOutputs};
 pub use params::{AffineMode, Model, Optimiser, RegParams, Similarity, PRESETS};
-pub use scans::{register_scans, with_threads, ScanOptions, ScanRegistration, ThreadsError, Timings};
+pub use scans::{register_scans, with_threads, PairScans, ScanOptions, ScanRegistration, ThreadsError, Timings};

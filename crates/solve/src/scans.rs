@@ -32,10 +32,11 @@ use std::time::Instant;
 
 use serde::Serialize;
 use sinew_grid::{resample, Affine, Border, Grid, Image, LabelMap};
+use sinew_transform::JacobianStats;
 
 use crate::affine::{self, AffineEstimate, AffineParams};
 use crate::frames::{self, InitialAlignment, InitialMode};
-use crate::native::NativeField;
+use crate::native::{native_outputs, NativeField, NativeOutputs};
 use crate::{register, AffineMode, LevelReport, Progress, RegParams, SolveError};
 
 /// Options of [`register_scans`] beyond the registration parameters.
@@ -98,6 +99,22 @@ impl From<&Grid> for GridSummary {
     fn from(g: &Grid) -> Self {
         GridSummary { shape: g.shape(), spacing_mm: g.spacing() }
     }
+}
+
+/// The scans of one registration with their optional label maps and mask: what
+/// `sinew register` reads and what the Python module's `register` is given.
+#[derive(Clone, Debug)]
+pub struct PairScans {
+    /// Fixed scan: the field lives on its grid.
+    pub fixed: Image,
+    /// Moving scan, on its own grid.
+    pub moving: Image,
+    /// Labels of the fixed scan (on its grid).
+    pub fixed_labels: Option<LabelMap>,
+    /// Labels of the moving scan (on its grid).
+    pub moving_labels: Option<LabelMap>,
+    /// Mask on the fixed grid (non-zero = inside): only voxels inside drive the data term.
+    pub mask: Option<LabelMap>,
 }
 
 /// The result of [`register_scans`].
@@ -209,6 +226,28 @@ impl Timings {
             self.optimise_s += l.optimise_s;
             self.level_jacobian_s += l.jacobian_s;
         }
+    }
+}
+
+impl ScanRegistration {
+    /// The outputs on the fixed scan's native grid: [`native_outputs`] of the moving scan
+    /// (padding = its finite minimum) and its labels, and the statistics of the Jacobian
+    /// determinant ([`sinew_transform::jacobian_stats`], every voxel); the seconds of each go
+    /// into `timings.warp_s` and `timings.jacobian_s`.
+    pub fn native_results(
+        &self,
+        moving: &Image,
+        moving_labels: Option<&LabelMap>,
+        timings: &mut Timings,
+    ) -> (NativeOutputs, JacobianStats) {
+        let t = Instant::now();
+        let pad = moving.finite_range().map_or(0.0, |r| r.0);
+        let native = native_outputs(&self.field, moving, pad, moving_labels);
+        timings.warp_s = t.elapsed().as_secs_f64();
+        let t = Instant::now();
+        let jacobian = sinew_transform::jacobian_stats(&native.jacdet, None);
+        timings.jacobian_s = t.elapsed().as_secs_f64();
+        (native, jacobian)
     }
 }
 

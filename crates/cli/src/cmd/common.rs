@@ -8,20 +8,12 @@ use sinew_grid::{Image, LabelMap};
 
 pub use sinew_cohort::{sha256_file, write_json, CAUTION};
 pub use sinew_score::{dice_report, DiceReport};
-pub use sinew_solve::with_threads;
+pub use sinew_solve::{with_threads, PairScans};
 
 /// The inputs of one pair, read and checked.
 pub struct Inputs {
-    /// Fixed scan.
-    pub fixed: Image,
-    /// Moving scan (on its own grid).
-    pub moving: Image,
-    /// Fixed labels (on the fixed grid).
-    pub fixed_labels: Option<LabelMap>,
-    /// Moving labels (on the moving grid).
-    pub moving_labels: Option<LabelMap>,
-    /// Mask on the fixed grid.
-    pub mask: Option<LabelMap>,
+    /// The scans, labels and mask.
+    pub scans: PairScans,
     /// What was done with NaN or infinite voxels.
     pub nan: NanRecord,
     paths: Vec<(&'static str, PathBuf)>,
@@ -135,11 +127,13 @@ impl Inputs {
             }
         }
         Ok(Inputs {
-            fixed: fixed_img,
-            moving: moving_img,
-            fixed_labels: fixed_labels_map,
-            moving_labels: moving_labels_map,
-            mask: mask_map,
+            scans: PairScans {
+                fixed: fixed_img,
+                moving: moving_img,
+                fixed_labels: fixed_labels_map,
+                moving_labels: moving_labels_map,
+                mask: mask_map,
+            },
             nan: nan_record,
             paths,
         })

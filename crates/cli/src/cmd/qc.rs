@@ -10,7 +10,7 @@ use sinew_grid::{resample, Border, Field, Image, LabelMap};
 use sinew_io::{FieldReadOptions, FieldUnits};
 use sinew_qc::{QcInput, QcOptions, Window};
 
-use crate::cmd::common::Inputs;
+use crate::cmd::common::{Inputs, PairScans};
 use crate::cmd::register::UnitsArg;
 
 /// Arguments of `sinew qc`.
@@ -106,7 +106,8 @@ pub fn run(args: QcArgs) -> anyhow::Result<()> {
     inputs_list.extend(args.moving_labels.as_deref());
     sinew_io::atomic::ensure_not_input(&args.out, &inputs_list)?;
     let inputs =
-        Inputs::load(&args.fixed, &args.moving, args.fixed_labels.as_deref(), args.moving_labels.as_deref(), None)?;
+        Inputs::load(&args.fixed, &args.moving, args.fixed_labels.as_deref(), args.moving_labels.as_deref(), None)?
+            .scans;
     let fopts = FieldReadOptions { units: args.units.map(FieldUnits::from), ..Default::default() };
     let (field, _) = sinew_io::read_field(&args.field, fopts)?;
     if !field.is_finite() {
@@ -171,7 +172,7 @@ fn on_fixed_grid(moving: &Image, fixed: &Image) -> Image {
 
 #[allow(clippy::too_many_arguments)]
 fn render(
-    inputs: &Inputs,
+    inputs: &PairScans,
     moving_on_fixed: &Image,
     warped: &Image,
     field: &Field,

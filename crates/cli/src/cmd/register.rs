@@ -8,7 +8,7 @@ use clap::{Args, ValueEnum};
 use serde::Serialize;
 use sinew_grid::{Border, Image, LabelMap};
 use sinew_io::FieldUnits;
-use sinew_solve::{InitialMode, Optimiser, RegParams, ScanOptions, ScanRegistration, Similarity, Stage};
+use sinew_solve::{InitialMode, Optimiser, PairScans, RegParams, ScanOptions, ScanRegistration, Similarity, Stage};
 
 use crate::cmd::common::{self, Inputs};
 use crate::ui;
@@ -577,14 +577,15 @@ pub fn run_pair(args: &PairRequest, params: &RegParams) -> anyhow::Result<Report
         args.mask.as_deref(),
         args.nan,
     )?;
+    let scans = &inputs.scans;
     let mut timings = sinew_solve::Timings { load_s: Some(t_all.elapsed().as_secs_f64()), ..Default::default() };
     let mut out_paths =
         OutPaths::new(&args.out, args.moving_labels.is_some(), args.npy, args.qc, args.out_format.extension());
     out_paths.affine = Some(args.out.join("affine.json"));
     common::prepare_out_dir(&args.out, &out_paths.all(), &inputs.paths())?;
-    let moving_resampled = !inputs.fixed.grid.same_as(&inputs.moving.grid, 1e-3);
+    let moving_resampled = !scans.fixed.grid.same_as(&scans.moving.grid, 1e-3);
 
-    let reg = register_with_progress(&inputs.fixed, &inputs.moving, inputs.mask.as_ref(), params, scan_opts, args)?;
+    let reg = register_with_progress(&scans.fixed, &scans.moving, scans.mask.as_ref(), params, scan_opts, args)?;
     timings.record(&reg);
     timings.register_s = t_all.elapsed().as_secs_f64();
     let linear_map = sinew_grid::Affine::from_4x4(reg.linear_map);
@@ -603,16 +604,9 @@ pub fn run_pair(args: &PairRequest, params: &RegParams) -> anyhow::Result<Report
 
     // The warped scan and labels and the Jacobian determinant on the fixed native grid,
     // from the native field evaluated slab by slab (never held whole).
-    let t = Instant::now();
-    let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
-    let native = sinew_solve::native_outputs(&reg.field, &inputs.moving, pad, inputs.moving_labels.as_ref());
-    timings.warp_s = t.elapsed().as_secs_f64();
+    let (native, jacobian) = reg.native_results(&scans.moving, scans.moving_labels.as_ref(), &mut timings);
 
-    let t = Instant::now();
-    let jacobian = sinew_transform::jacobian_stats(&native.jacdet, None);
-    timings.jacobian_s = t.elapsed().as_secs_f64();
-
-    let dice = match (&inputs.fixed_labels, &inputs.moving_labels, &native.warped_labels) {
+    let dice = match (&scans.fixed_labels, &scans.moving_labels, &native.warped_labels) {
         (Some(f), Some(m), Some(w)) => Some(common::dice_report(f, m, w)?),
         _ => None,
     };
@@ -634,7 +628,7 @@ pub fn run_pair(args: &PairRequest, params: &RegParams) -> anyhow::Result<Report
         }
         let mut qc = None;
         if out_paths.qc.is_some() {
-            qc = Some(draw_qc(args, &inputs, &reg, &native, pad)?);
+            qc = Some(draw_qc(args, scans, &reg, &native)?);
         }
         timings.write_s = Some(t.elapsed().as_secs_f64());
         timings.total_s = t_all.elapsed().as_secs_f64();
@@ -848,10 +842,9 @@ fn write_native_field(path: &Path, field: &sinew_solve::NativeField, units: Fiel
 /// the fixed grid itself, the native outputs are drawn.
 fn draw_qc(
     args: &PairRequest,
-    inputs: &Inputs,
+    inputs: &PairScans,
     reg: &ScanRegistration,
     native: &sinew_solve::NativeOutputs,
-    pad: f32,
 ) -> anyhow::Result<crate::cmd::qc::QcRecord> {
     let wgrid = &reg.fixed_working.grid;
     let on_w = |l: &LabelMap| sinew_grid::resample::resample_labels(l, wgrid);
@@ -882,6 +875,7 @@ fn draw_qc(
         );
     }
     let field = reg.field.on_working_grid();
+    let pad = inputs.moving.finite_range().map_or(0.0, |r| r.0);
     let warped = sinew_transform::warp_image_from(&inputs.moving, &field, Border::Constant(pad));
     let warped_labels = inputs.moving_labels.as_ref().map(|l| sinew_transform::warp_labels_from(l, &field));
     let jacdet = sinew_transform::jacobian_determinant(&field);

@@ -219,7 +219,7 @@ impl Ctx<'_> {
             self.scan.nan_policy()?,
         )?);
         let mut cache = self.cache.lock().expect("no panic while caching");
-        let size = |i: &common::Inputs| i.fixed.grid.len() + i.moving.grid.len();
+        let size = |i: &common::Inputs| i.scans.fixed.grid.len() + i.scans.moving.grid.len();
         let used: usize = cache.values().map(|i| size(i)).sum();
         if used + size(&inputs) <= CACHE_VOXELS {
             cache.insert(key, inputs.clone());
@@ -249,16 +249,16 @@ impl Ctx<'_> {
             let inputs = self.inputs(pair)?;
             let t = Instant::now();
             let reg = sinew_solve::register_scans(
-                &inputs.fixed,
-                &inputs.moving,
-                inputs.mask.as_ref(),
+                &inputs.scans.fixed,
+                &inputs.scans.moving,
+                inputs.scans.mask.as_ref(),
                 params,
                 &opts,
                 &mut |_| {},
             )
             .with_context(|| format!("registering {} to {}", m.image.display(), f.image.display()))?;
             let seconds = t.elapsed().as_secs_f64();
-            let (fl, ml) = (inputs.fixed_labels.as_ref(), inputs.moving_labels.as_ref());
+            let (fl, ml) = (inputs.scans.fixed_labels.as_ref(), inputs.scans.moving_labels.as_ref());
             let score = sinew_score::score_pair(
                 fl.expect("labels were loaded"),
                 ml.expect("labels were loaded"),
