@@ -372,7 +372,7 @@ pub fn read_runtimes(path: &Path, subjects: &[Subject]) -> Result<std::collectio
     let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
     let (cols, records) = crate::manifest::read_table(&text, path)?;
     if cols != ["fixed", "moving", "runtime_s"] {
-        bail!("{}: the header must be fixed,moving,runtime_s, found {}", path.display(), cols.join(","));
+        bail!("{}: the header must be fixed,moving,runtime_s, found {:?}", path.display(), cols.join(","));
     }
     let mut out = std::collections::BTreeMap::new();
     for (line, c) in records {

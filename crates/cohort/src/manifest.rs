@@ -224,7 +224,7 @@ pub fn read_pair_list(path: &Path) -> Result<Vec<NamedPair>> {
 pub fn parse_pair_list(text: &str, path: &Path) -> Result<Vec<NamedPair>> {
     let (cols, records) = read_table(text, path)?;
     if cols != ["fixed", "moving"] {
-        bail!("{}: the header must be fixed,moving (subject ids), found {}", path.display(), cols.join(","));
+        bail!("{}: the header must be fixed,moving (subject ids), found {:?}", path.display(), cols.join(","));
     }
     Ok(records.into_iter().map(|(_, c)| NamedPair { fixed: c[0].clone(), moving: c[1].clone() }).collect())
 }

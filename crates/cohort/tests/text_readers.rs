@@ -7,17 +7,14 @@ mod text;
 
 use rand::{Rng, SeedableRng};
 
-/// Valid inputs of every reader: a scores table (quoted cells with a comma, a quote and a
-/// line break), TOML and CSV manifests, a pair list.
+/// Valid inputs of every reader, the `text_read` fuzz target's seed corpus
+/// (`fuzz/corpus/text_read/`): a scores table (quoted cells with a comma, a quote and a line
+/// break), TOML and CSV manifests, a pair list.
 const SEEDS: [&str; 4] = [
-    "method,pair,fixed,moving,label,name,dice_before,dice,hd95_mm,hd_mm,assd_mm,folding,sdlogj,jac_min,landmark_mm,runtime_s\n\
-     sinew,0,a,b,1,liver,0.5,0.75,1.25,2,0.1,0,0.05,0.9,,1.5\n\
-     net,0,a,b,2,\"sp,\"\"l\"\"\neen\",,1e-3,,,,,,,,\n",
-    "[[subject]]\nid = \"a\"\nimage = \"a.nii.gz\"\nlabels = \"al.nii.gz\"\n\
-     [[subject]]\nid = \"b\"\nimage = \"b.nii.gz\"\nlabels = \"bl.nii.gz\"\nmask = \"m.nii.gz\"\n\
-     [[pair]]\nfixed = \"b\"\nmoving = \"a\"\n",
-    "id,image,labels,mask\na,a.nii.gz,al.nii.gz,\nb,b.nii.gz,bl.nii.gz,m.nii.gz\n",
-    "# pairs\nfixed,moving\na,b\n\nb,a\n",
+    include_str!("../../../fuzz/corpus/text_read/scores.csv"),
+    include_str!("../../../fuzz/corpus/text_read/manifest.toml"),
+    include_str!("../../../fuzz/corpus/text_read/manifest.csv"),
+    include_str!("../../../fuzz/corpus/text_read/pairs.csv"),
 ];
 
 #[test]
@@ -51,4 +48,19 @@ fn mutated_inputs_keep_the_properties() {
         }
         text::check_text(&bytes);
     }
+}
+
+#[test]
+fn fuzz_regressions_keep_the_properties() {
+    // Every input that ever broke a property of the `text_read` target, kept in
+    // `fuzz/regressions/text_read/` (the first: a pair list whose header cell held a line
+    // break, reported over two lines).
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../../fuzz/regressions/text_read");
+    let mut n = 0;
+    for entry in std::fs::read_dir(&dir).unwrap_or_else(|e| panic!("{}: {e}", dir.display())) {
+        let bytes = std::fs::read(entry.unwrap().path()).unwrap();
+        text::check_text(&bytes);
+        n += 1;
+    }
+    assert!(n >= 1, "no regression inputs in {}", dir.display());
 }
