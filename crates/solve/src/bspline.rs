@@ -70,7 +70,7 @@ impl Parametrisation for BsplineModel {
 mod tests {
     use super::*;
     use crate::kernel::Problem;
-    use crate::testing::{central_difference, smooth_volume};
+    use crate::testing::{central_difference, Descriptors};
 
     #[test]
     fn registration_objective_gradient_matches_central_finite_differences() {
@@ -79,8 +79,7 @@ mod tests {
         let shape = [14, 11, 13];
         let n = shape.iter().product::<usize>();
         let lattice = Grid::axis_aligned(shape, [2.0, 2.5, 2.0], [0.0; 3]);
-        let fixed = smooth_volume(shape, 12, 0.0);
-        let moving = smooth_volume(shape, 12, 0.5);
+        let d = Descriptors::new(shape, 0.5);
         // The data term counts voxels two or more voxels from the border only, so every sample
         // stays inside the moving volume (|u| < 1.2 voxels here), where E is differentiable.
         let mask: Vec<bool> = (0..n)
@@ -89,17 +88,7 @@ mod tests {
                 (0..3).all(|d| c[d] >= 2 && c[d] + 2 < shape[d])
             })
             .collect();
-        let p = Problem {
-            shape,
-            spacing: lattice.spacing(),
-            stride: 1,
-            desc_shape: shape,
-            channels: 12,
-            fixed: &fixed,
-            moving: &moving,
-            mask: Some(&mask),
-            lambda: 0.2,
-        };
+        let p = Problem { mask: Some(&mask), ..d.problem(shape, lattice.spacing(), 1, 0.2) };
         let mut model = BsplineModel::new(&lattice, 7.0, 0.05);
         let u0: Vec<f32> = (0..3 * n).map(|i| 0.3 * ((i as f32) * 0.13).sin()).collect();
         let m = model.len();

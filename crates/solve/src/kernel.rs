@@ -357,28 +357,16 @@ unsafe fn fold(p8: std::arch::x86_64::__m256, p4: std::arch::x86_64::__m128) -> 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::testing::{central_difference, smooth_volume};
+    use crate::testing::{central_difference, smooth_volume, Descriptors};
 
     #[test]
     fn gradient_matches_central_finite_differences() {
         // Reference: central differences (E(u+h) − E(u−h)) / 2h, a standard numerical check.
         let shape = [7, 6, 5];
         let n = 7 * 6 * 5;
-        let c = 12;
-        let fixed = smooth_volume(shape, c, 0.0);
-        let moving = smooth_volume(shape, c, 0.4);
+        let d = Descriptors::new(shape, 0.4);
         let mask: Vec<bool> = (0..n).map(|i| i % 7 != 3).collect();
-        let p = Problem {
-            shape,
-            spacing: [1.0, 2.0, 1.5],
-            stride: 1,
-            desc_shape: shape,
-            channels: c,
-            fixed: &fixed,
-            moving: &moving,
-            mask: Some(&mask),
-            lambda: 0.3,
-        };
+        let p = Problem { mask: Some(&mask), ..d.problem(shape, [1.0, 2.0, 1.5], 1, 0.3) };
         let u: Vec<f32> = (0..3 * n).map(|i| 0.3 * ((i as f32) * 0.37).sin()).collect();
         let worst = worst_gradient_error(&p, u, &[5, 77, 150, 211, 3 * n - 4, n + 40, 2 * n + 99]);
         assert!(worst < 2e-2, "relative gradient error {worst}");
@@ -409,19 +397,8 @@ mod tests {
         // beyond the face equals the value on it, so the residuals agree to O(h)).
         let shape = [7, 6, 5];
         let n = 7 * 6 * 5;
-        let fixed = smooth_volume(shape, 12, 0.0);
-        let moving = smooth_volume(shape, 12, 0.4);
-        let p = Problem {
-            shape,
-            spacing: [1.0, 2.0, 1.5],
-            stride: 1,
-            desc_shape: shape,
-            channels: 12,
-            fixed: &fixed,
-            moving: &moving,
-            mask: None,
-            lambda: 0.0,
-        };
+        let d = Descriptors::new(shape, 0.4);
+        let p = d.problem(shape, [1.0, 2.0, 1.5], 1, 0.0);
         let base: Vec<f32> = (0..3 * n).map(|i| 0.2 * ((i as f32) * 0.37).sin()).collect();
         let h = 1e-3f32;
         let mut sums = Vec::new();
@@ -465,22 +442,10 @@ mod tests {
         // displacements (0.3 … 0.7 lattice voxels) keep every sample inside the descriptor
         // grid, where the slope is the derivative of the value; samples beyond the faces are
         // checked by `gradient_beyond_every_face_follows_the_border_rule`.
-        let desc_shape = [11, 9, 9];
         let shape = [5, 4, 4];
         let n = 80;
-        let fixed = smooth_volume(desc_shape, 12, 0.0);
-        let moving = smooth_volume(desc_shape, 12, 0.5);
-        let p = Problem {
-            shape,
-            spacing: [2.0, 4.0, 3.0],
-            stride: 2,
-            desc_shape,
-            channels: 12,
-            fixed: &fixed,
-            moving: &moving,
-            mask: None,
-            lambda: 0.2,
-        };
+        let d = Descriptors::new([11, 9, 9], 0.5);
+        let p = d.problem(shape, [2.0, 4.0, 3.0], 2, 0.2);
         let u: Vec<f32> = (0..3 * n).map(|i| 0.5 + 0.2 * ((i as f32) * 0.61).sin()).collect();
         let worst = worst_gradient_error(&p, u, &[3, 41, 77, 100, 199, 230]);
         assert!(worst < 2e-2, "relative gradient error {worst}");
@@ -496,8 +461,7 @@ mod tests {
             return;
         }
         let shape = [7, 6, 5];
-        let fixed = smooth_volume(shape, 12, 0.0);
-        let moving = smooth_volume(shape, 12, 0.4);
+        let Descriptors { fixed, moving, .. } = Descriptors::new(shape, 0.4);
         for t in 0..500 {
             let t = t as f32;
             let q = [8.0 * (0.37 * t).sin() + 3.0, 7.0 * (0.53 * t).cos() + 2.5, 6.0 * (0.71 * t).sin() + 2.0];
