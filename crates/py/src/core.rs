@@ -69,14 +69,20 @@ pub fn labels(grid: Grid, data: ArrayView3<'_, u16>) -> Result<LabelMap, ApiErro
     Ok(Volume::new(grid, data.as_standard_layout().into_owned())?)
 }
 
-/// The checks `sinew register` makes on a scan: no NaN or infinite voxel, not constant.
-pub fn check_scan(img: &Image, what: &str) -> Result<(), ApiError> {
+/// A scan must hold no NaN or infinite voxel (the message names `what`).
+pub fn check_finite(img: &Image, what: &str) -> Result<(), ApiError> {
     let bad = img.count_non_finite();
     if bad > 0 {
         return Err(input(format!(
             "{what}: {bad} voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value)"
         )));
     }
+    Ok(())
+}
+
+/// The checks `sinew register` makes on a scan: no NaN or infinite voxel, not constant.
+pub fn check_scan(img: &Image, what: &str) -> Result<(), ApiError> {
+    check_finite(img, what)?;
     if let Some((lo, hi)) = img.finite_range() {
         if lo == hi {
             return Err(input(format!("{what}: the image is constant ({lo}); nothing to register")));

@@ -20,6 +20,16 @@ fn value_error(e: ApiError) -> PyErr {
     PyValueError::new_err(e.to_string())
 }
 
+/// Runs `f` without the GIL on `threads` workers ([`core::with_threads`]); an error becomes a
+/// `ValueError` with its one-line message.
+fn detached<T: Send>(
+    py: Python<'_>,
+    threads: Option<usize>,
+    f: impl FnOnce() -> Result<T, ApiError> + Send,
+) -> PyResult<T> {
+    py.detach(|| core::with_threads(threads, f)).map_err(value_error)
+}
+
 fn shape3<T>(a: &ArrayView3<'_, T>) -> [usize; 3] {
     let s = a.shape();
     [s[0], s[1], s[2]]
@@ -176,25 +186,16 @@ fn warp<'py>(
     threads: Option<usize>,
 ) -> PyResult<Bound<'py, numpy::PyArray3<f32>>> {
     let (mv, ma, fv, fa) = (moving.as_array(), moving_affine.as_array(), field.as_array(), field_affine.as_array());
-    let out = py
-        .detach(|| {
-            core::with_threads(threads, || {
-                let f = field_on(fv, fa, units)?;
-                let img = core::image(grid_of(shape3(&mv), ma, "moving")?, mv)?;
-                let bad = img.count_non_finite();
-                if bad > 0 {
-                    return Err(ApiError::Input(format!(
-                        "moving: {bad} voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value)"
-                    )));
-                }
-                if pad.is_some_and(|p| !p.is_finite()) {
-                    return Err(ApiError::Input("pad: must be a finite number".into()));
-                }
-                let pad = pad.unwrap_or_else(|| img.finite_range().map_or(0.0, |r| r.0));
-                Ok(sinew_transform::warp_image_from(&img, &f, Border::Constant(pad)).data)
-            })
-        })
-        .map_err(value_error)?;
+    let out = detached(py, threads, || {
+        let f = field_on(fv, fa, units)?;
+        let img = core::image(grid_of(shape3(&mv), ma, "moving")?, mv)?;
+        core::check_finite(&img, "moving")?;
+        if pad.is_some_and(|p| !p.is_finite()) {
+            return Err(ApiError::Input("pad: must be a finite number".into()));
+        }
+        let pad = pad.unwrap_or_else(|| img.finite_range().map_or(0.0, |r| r.0));
+        Ok(sinew_transform::warp_image_from(&img, &f, Border::Constant(pad)).data)
+    })?;
     Ok(out.into_pyarray(py))
 }
 
@@ -211,15 +212,11 @@ fn warp_labels<'py>(
     threads: Option<usize>,
 ) -> PyResult<Bound<'py, numpy::PyArray3<u16>>> {
     let (mv, ma, fv, fa) = (moving.as_array(), moving_affine.as_array(), field.as_array(), field_affine.as_array());
-    let out = py
-        .detach(|| {
-            core::with_threads(threads, || {
-                let f = field_on(fv, fa, units)?;
-                let l = core::labels(grid_of(shape3(&mv), ma, "moving")?, mv)?;
-                Ok(sinew_transform::warp_labels_from(&l, &f).data)
-            })
-        })
-        .map_err(value_error)?;
+    let out = detached(py, threads, || {
+        let f = field_on(fv, fa, units)?;
+        let l = core::labels(grid_of(shape3(&mv), ma, "moving")?, mv)?;
+        Ok(sinew_transform::warp_labels_from(&l, &f).data)
+    })?;
     Ok(out.into_pyarray(py))
 }
 
@@ -234,16 +231,12 @@ fn jacobian_determinant<'py>(
     threads: Option<usize>,
 ) -> PyResult<(Bound<'py, numpy::PyArray3<f32>>, String)> {
     let (fv, fa) = (field.as_array(), affine.as_array());
-    let (det, stats) = py
-        .detach(|| {
-            core::with_threads(threads, || {
-                let f = field_on(fv, fa, units)?;
-                let det = sinew_transform::jacobian_determinant(&f);
-                let stats = sinew_transform::jacobian_stats(&det, None);
-                Ok((det.data, serde_json::to_string(&stats).expect("statistics serialise")))
-            })
-        })
-        .map_err(value_error)?;
+    let (det, stats) = detached(py, threads, || {
+        let f = field_on(fv, fa, units)?;
+        let det = sinew_transform::jacobian_determinant(&f);
+        let stats = sinew_transform::jacobian_stats(&det, None);
+        Ok((det.data, serde_json::to_string(&stats).expect("statistics serialise")))
+    })?;
     Ok((det.into_pyarray(py), stats))
 }
 
@@ -259,18 +252,11 @@ fn mind_ssc<'py>(
     threads: Option<usize>,
 ) -> PyResult<Bound<'py, numpy::PyArray4<f32>>> {
     let (iv, ia) = (image.as_array(), affine.as_array());
-    let out = py
-        .detach(|| {
-            core::with_threads(threads, || {
-                let img = core::image(grid_of(shape3(&iv), ia, "image")?, iv)?;
-                let bad = img.count_non_finite();
-                if bad > 0 {
-                    return Err(ApiError::Input(format!("image: {bad} voxels are NaN or infinite")));
-                }
-                core::mind_ssc(&img, radius, dilation)
-            })
-        })
-        .map_err(value_error)?;
+    let out = detached(py, threads, || {
+        let img = core::image(grid_of(shape3(&iv), ia, "image")?, iv)?;
+        core::check_finite(&img, "image")?;
+        core::mind_ssc(&img, radius, dilation)
+    })?;
     Ok(out.into_pyarray(py))
 }
 
@@ -312,48 +298,45 @@ fn score<'py>(
     let warped_v = warped_labels.as_ref().map(|a| a.as_array());
     let fl = fixed_landmarks.as_ref().map(|a| a.as_array());
     let ml = moving_landmarks.as_ref().map(|a| a.as_array());
-    py.detach(|| {
-        core::with_threads(threads, || {
-            let fixed = core::labels(grid_of(shape3(&fv), fa, "fixed_labels")?, fv)?;
-            let moving = core::labels(grid_of(shape3(&mv), ma, "moving_labels")?, mv)?;
-            let warp = match (field_v, warped_v) {
-                (Some(f), None) => {
-                    let s = f.shape();
-                    if s.len() != 4 || s[..3] != fixed.grid.shape()[..] || s[3] != 3 {
-                        let g = fixed.grid.shape();
-                        return Err(ApiError::Input(format!(
-                            "field: shape {s:?} does not match the fixed labels: expected {:?} (channel-last) or {:?} (channel-first)",
-                            [g[0], g[1], g[2], 3],
-                            [3, g[0], g[1], g[2]]
-                        )));
-                    }
-                    let field =
-                        core::field_from_channel_last(fixed.grid.clone(), f, Units::parse(units, "units")?, "field")?;
-                    ScoreWarp::Field { field, push }
+    detached(py, threads, || {
+        let fixed = core::labels(grid_of(shape3(&fv), fa, "fixed_labels")?, fv)?;
+        let moving = core::labels(grid_of(shape3(&mv), ma, "moving_labels")?, mv)?;
+        let warp = match (field_v, warped_v) {
+            (Some(f), None) => {
+                let s = f.shape();
+                if s.len() != 4 || s[..3] != fixed.grid.shape()[..] || s[3] != 3 {
+                    let g = fixed.grid.shape();
+                    return Err(ApiError::Input(format!(
+                        "field: shape {s:?} does not match the fixed labels: expected {:?} (channel-last) or {:?} (channel-first)",
+                        [g[0], g[1], g[2], 3],
+                        [3, g[0], g[1], g[2]]
+                    )));
                 }
-                (None, Some(w)) => {
-                    if shape3(&w) != fixed.grid.shape() {
-                        return Err(ApiError::Input(format!(
-                            "warped_labels: shape {:?} does not match the fixed labels {:?}",
-                            w.shape(),
-                            fixed.grid.shape()
-                        )));
-                    }
-                    ScoreWarp::Warped(core::labels(fixed.grid.clone(), w)?)
+                let field =
+                    core::field_from_channel_last(fixed.grid.clone(), f, Units::parse(units, "units")?, "field")?;
+                ScoreWarp::Field { field, push }
+            }
+            (None, Some(w)) => {
+                if shape3(&w) != fixed.grid.shape() {
+                    return Err(ApiError::Input(format!(
+                        "warped_labels: shape {:?} does not match the fixed labels {:?}",
+                        w.shape(),
+                        fixed.grid.shape()
+                    )));
                 }
-                _ => return Err(ApiError::Input("give a field or warped_labels (exactly one)".into())),
-            };
-            let (f, m) = (points(fl, "fixed_landmarks")?, points(ml, "moving_landmarks")?);
-            let lm = match (&f, &m) {
-                (Some(f), Some(m)) => Some((f.as_slice(), m.as_slice())),
-                (None, None) => None,
-                _ => return Err(ApiError::Input("landmarks: give both fixed_landmarks and moving_landmarks".into())),
-            };
-            let r = core::score(&fixed, &moving, warp, lm)?;
-            Ok(serde_json::to_string(&r).expect("scores serialise"))
-        })
+                ScoreWarp::Warped(core::labels(fixed.grid.clone(), w)?)
+            }
+            _ => return Err(ApiError::Input("give a field or warped_labels (exactly one)".into())),
+        };
+        let (f, m) = (points(fl, "fixed_landmarks")?, points(ml, "moving_landmarks")?);
+        let lm = match (&f, &m) {
+            (Some(f), Some(m)) => Some((f.as_slice(), m.as_slice())),
+            (None, None) => None,
+            _ => return Err(ApiError::Input("landmarks: give both fixed_landmarks and moving_landmarks".into())),
+        };
+        let r = core::score(&fixed, &moving, warp, lm)?;
+        Ok(serde_json::to_string(&r).expect("scores serialise"))
     })
-    .map_err(value_error)
 }
 
 /// The native part of the `sinew` package.
