@@ -72,12 +72,25 @@ pub struct AffineParams {
     /// Dice); 100 k rotated a thick-slice real CT moved into another frame by 12° (6.0 mm mean
     /// endpoint error against 1.13 mm).
     pub max_points: usize,
+    /// Adam's step falls linearly over a level's iterations, from `step_mm` at the first to
+    /// `(1 − step_decay)·step_mm` at the last: `lr_t = lr₀·(1 − step_decay·t / iterations)`.
+    pub step_decay: f64,
+    /// Early stop of a level's Adam iterations: an energy `E` counts as an improvement when
+    /// `E < (1 − tolerance)·E_best` (relative) ...
+    pub tolerance: f64,
+    /// ... and the level stops when `patience` iterations in a row bring none.
+    pub patience: usize,
+    /// Iterations of the L-BFGS polish after Adam on every level but the coarsest (0 = none).
+    pub polish_iterations: usize,
+    /// Gradient-norm tolerance of the L-BFGS polish ([`crate::lbfgs::minimise`]).
+    pub polish_tolerance: f64,
 }
 
 impl AffineParams {
-    /// Levels at 8, 4 and 2 mm: Adam for 200, 100 and 20 iterations (steps 2, 0.5, 0.2 mm),
-    /// then on the 4 and 2 mm levels an L-BFGS polish of at most 30 iterations; every fixed
-    /// voxel compared.
+    /// Levels at 8, 4 and 2 mm: Adam for 200, 100 and 20 iterations (steps 2, 0.5, 0.2 mm,
+    /// each falling to a tenth over its level; a level stops after 25 iterations without a
+    /// relative improvement of 10⁻⁶), then on the 4 and 2 mm levels an L-BFGS polish of at
+    /// most 30 iterations (tolerance 10⁻⁹); every fixed voxel compared.
     pub fn new(mode: AffineMode) -> AffineParams {
         AffineParams {
             mode,
@@ -87,9 +100,32 @@ impl AffineParams {
             step_mm: vec![2.0, 0.5, 0.2],
             mind: MindParams::default(),
             max_points: usize::MAX,
+            step_decay: 0.9,
+            tolerance: 1e-6,
+            patience: 25,
+            polish_iterations: 30,
+            polish_tolerance: 1e-9,
         }
     }
 }
+
+/// A pyramid level reaches a spacing `s` when its smallest spacing is at least `SPACING_SLACK·s`,
+/// so that spacings rounded in a header still count: halving a 1.9999 mm grid twice gives
+/// 7.9996 mm, which should count as the 8 mm level.
+const SPACING_SLACK: f64 = 0.99;
+
+/// At most this many halvings (a 0.5 mm scan reaches 32 mm).
+const MAX_HALVINGS: usize = 6;
+
+/// The pyramid halves only while every axis has at least this many voxels: on a smaller level
+/// the voxels within the descriptors' reach of a face (MIND-SSC patch radius plus dilation,
+/// 3 voxels by default) would be a large share of the level.
+const MIN_LEVEL_VOXELS: usize = 16;
+
+/// Adam is invariant to the gradient's scale except through its ε (10⁻⁸, [`Adam::new`]): the
+/// gradient of the summed energy is multiplied by this before each step so that ε stays
+/// negligible against it.
+const ADAM_GRADIENT_SCALE: f64 = 1e3;
 
 /// One optimised level of the linear stage.
 #[derive(Clone, Debug, Serialize)]
@@ -401,11 +437,14 @@ pub fn estimate(
     let n = model.len();
     theta[n - 3..].copy_from_slice(&init_t);
 
-    // Pyramid depth: halve until the smallest spacing reaches the coarsest level (at most 6 halvings).
+    // Pyramid depth: halve until the smallest spacing reaches the coarsest level.
     let min_spacing = |g: &Grid| g.spacing().iter().cloned().fold(f64::INFINITY, f64::min);
     let mut depth = 1;
     let mut g = fixed.grid.clone();
-    while min_spacing(&g) < params.coarsest_mm * 0.99 && depth < 7 && g.shape().iter().all(|&s| s >= 16) {
+    while min_spacing(&g) < params.coarsest_mm * SPACING_SLACK
+        && depth <= MAX_HALVINGS
+        && g.shape().iter().all(|&s| s >= MIN_LEVEL_VOXELS)
+    {
         g = g.halved(pyramid::axes_to_keep(&g));
         depth += 1;
     }
@@ -416,7 +455,7 @@ pub fn estimate(
     for l in (0..depth).rev() {
         let fg = &fixed_pyr[l].grid;
         // Levels finer than finest_mm are skipped (the coarsest level always runs).
-        if l + 1 < depth && min_spacing(fg) < params.finest_mm * 0.99 {
+        if l + 1 < depth && min_spacing(fg) < params.finest_mm * SPACING_SLACK {
             break;
         }
         let (fd, md) = rayon::join(|| mind_ssc(&fixed_pyr[l], &params.mind), || mind_ssc(&moving_pyr[l], &params.mind));
@@ -442,25 +481,24 @@ pub fn estimate(
             if it == 0 {
                 start = e;
             }
-            if e < best.0 * (1.0 - 1e-6) {
+            if e < best.0 * (1.0 - params.tolerance) {
                 best = (e, th.clone());
                 since_best = 0;
             } else {
                 since_best += 1;
             }
-            // Stop at the planned count, or when the best energy has not improved for 25 iterations.
-            if it == iters || since_best >= 25 {
+            // Stop at the planned count, or when the best energy has not improved for `patience` iterations.
+            if it == iters || since_best >= params.patience {
                 break;
             }
             model.chain(&th, &g_l, &g_t, &mut grad);
-            // Adam is scale-invariant up to ε: hand it the gradient of the summed energy.
-            let g32: Vec<f32> = grad.iter().map(|&v| (v * 1e3) as f32).collect();
-            adam.lr = (lr0 * (1.0 - 0.9 * it as f64 / iters.max(1) as f64)) as f32;
+            let g32: Vec<f32> = grad.iter().map(|&v| (v * ADAM_GRADIENT_SCALE) as f32).collect();
+            adam.lr = (lr0 * (1.0 - params.step_decay * it as f64 / iters.max(1) as f64)) as f32;
             adam.step(&mut th32, &g32);
             done = it + 1;
         }
         theta = best.1;
-        if step > 1 {
+        if step > 1 && params.polish_iterations > 0 {
             // Finer levels: polish with L-BFGS from Adam's best (fast on a smooth 6/12-D energy).
             let mut eval = |th: &[f32], g: &mut [f32]| {
                 let th64: Vec<f64> = th.iter().map(|&v| v as f64).collect();
@@ -472,7 +510,7 @@ pub fn estimate(
                 e
             };
             let th32: Vec<f32> = theta.iter().map(|&v| v as f32).collect();
-            let out = crate::lbfgs::minimise(th32, 30, 1e-9, &mut eval)
+            let out = crate::lbfgs::minimise(th32, params.polish_iterations, params.polish_tolerance, &mut eval)
                 .map_err(|message| SolveError::Lbfgs { level: l, message })?;
             let polished: Vec<f64> = out.param.iter().map(|&v| v as f64).collect();
             let (mut g_l, mut g_t) = ([[0.0; 3]; 3], [0.0; 3]);
@@ -536,21 +574,15 @@ pub fn compose_after(u: &mut sinew_grid::Field, a: &Affine) {
     let g = u.grid.clone();
     let m = g.inverse_affine().compose(&a.compose(g.affine()));
     let [_, ny, nz] = g.shape();
-    let n = g.len();
-    let data = u.data.as_slice_mut().expect("standard layout");
-    let (ux, rest) = data.split_at_mut(n);
-    let (uy, uz) = rest.split_at_mut(n);
-    ux.par_chunks_mut(ny * nz).zip(uy.par_chunks_mut(ny * nz)).zip(uz.par_chunks_mut(ny * nz)).enumerate().for_each(
-        |(i, ((ax, ay), az))| {
-            for idx in 0..ny * nz {
-                let x = [i as f64, (idx / nz) as f64, (idx % nz) as f64];
-                let q = m.apply([x[0] + ax[idx] as f64, x[1] + ay[idx] as f64, x[2] + az[idx] as f64]);
-                ax[idx] = (q[0] - x[0]) as f32;
-                ay[idx] = (q[1] - x[1]) as f32;
-                az[idx] = (q[2] - x[2]) as f32;
-            }
-        },
-    );
+    u.par_slabs_mut(|i, [ax, ay, az]| {
+        for idx in 0..ny * nz {
+            let x = [i as f64, (idx / nz) as f64, (idx % nz) as f64];
+            let q = m.apply([x[0] + ax[idx] as f64, x[1] + ay[idx] as f64, x[2] + az[idx] as f64]);
+            ax[idx] = (q[0] - x[0]) as f32;
+            ay[idx] = (q[1] - x[1]) as f32;
+            az[idx] = (q[2] - x[2]) as f32;
+        }
+    });
 }
 
 #[cfg(test)]
