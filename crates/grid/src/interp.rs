@@ -71,7 +71,9 @@ pub enum Border {
 /// (voxel units), for every channel of a channel-last volume (`offset·C + channel`).
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Stencil {
-    /// Voxel index of each corner (standard order).
+    /// Voxel index of each corner (standard order). Corner `n = 4a + 2b + c` takes the
+    /// upper side of the cell along `i` when `a = 1`, along `j` when `b = 1`, along `k` when
+    /// `c = 1`, so `offset[7]` is the largest.
     pub offset: [usize; 8],
     /// Per corner: weight of the value, of `∂/∂i`, `∂/∂j` and `∂/∂k`.
     pub weight: [[f32; 4]; 8],

@@ -14,6 +14,7 @@ mod grid;
 pub mod interp;
 pub mod pyramid;
 pub mod resample;
+pub mod simd;
 pub mod smooth;
 mod volume;
 

@@ -46,21 +46,20 @@ impl<P: Parametrisation + ?Sized> Parametrisation for Box<P> {
 pub struct GaussianDense {
     shape: [usize; 3],
     kernel: Vec<f32>,
-    scratch: Vec<f32>,
 }
 
 impl GaussianDense {
     /// For a lattice of `shape` and smoothing σ (voxels); σ = 0 is the identity.
     pub fn new(shape: [usize; 3], sigma: f64) -> GaussianDense {
-        GaussianDense { shape, kernel: sinew_grid::smooth::gaussian_kernel(sigma), scratch: Vec::new() }
+        GaussianDense { shape, kernel: sinew_grid::smooth::gaussian_kernel(sigma) }
     }
 
-    fn smooth(&mut self, buf: &mut [f32]) {
+    /// `out = G_σ·src`, component by component.
+    fn smooth(&self, src: &[f32], out: &mut [f32]) {
         let n: usize = self.shape.iter().product();
-        for comp in buf.chunks_exact_mut(n) {
-            for axis in 0..3 {
-                sinew_grid::smooth::convolve_axis_slice(comp, self.shape, axis, &self.kernel, &mut self.scratch);
-            }
+        assert!(src.len() == 3 * n && out.len() == 3 * n, "buffers of 3·N values");
+        for (s, o) in src.chunks_exact(n).zip(out.chunks_exact_mut(n)) {
+            sinew_grid::smooth::separable_into(s, o, self.shape, &self.kernel);
         }
     }
 }
@@ -71,13 +70,11 @@ impl Parametrisation for GaussianDense {
     }
 
     fn expand(&mut self, theta: &[f32], out: &mut [f32]) {
-        out.copy_from_slice(theta);
-        self.smooth(out);
+        self.smooth(theta, out);
     }
 
     fn adjoint(&mut self, g: &[f32], out: &mut [f32]) {
-        out.copy_from_slice(g);
-        self.smooth(out);
+        self.smooth(g, out);
     }
 }
 
