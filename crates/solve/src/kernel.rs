@@ -368,22 +368,24 @@ unsafe fn data_term12_avx2(p: [f32; 3], shape: [usize; 3], moving: &[f32], fixed
     let gx = fold(_mm256_mul_ps(r8, x8), _mm_mul_ps(r4, x4));
     let gy = fold(_mm256_mul_ps(r8, y8), _mm_mul_ps(r4, y4));
     let gz = fold(_mm256_mul_ps(r8, z8), _mm_mul_ps(r4, z4));
-    (e, [gx, gy, gz])
-}
-
-/// The total of 12 channels held as 8 + 4 lanes, added as the 4-lane loop of [`data_term`]
-/// adds them: `((0 + lanes 0–3) + lanes 4–7) + lanes 8–11`, then `(l0 + l1) + (l2 + l3)`.
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-#[inline]
-unsafe fn fold(p8: std::arch::x86_64::__m256, p4: std::arch::x86_64::__m128) -> f32 {
-    use std::arch::x86_64::*;
-    let lo = _mm_add_ps(_mm_setzero_ps(), _mm256_castps256_ps128(p8));
-    let t = _mm_add_ps(_mm_add_ps(lo, _mm256_extractf128_ps::<1>(p8)), p4);
+    // The four lane totals `(l0 + l1) + (l2 + l3)` at once: `hadd(a, b)` is
+    // `[a0 + a1, a2 + a3, b0 + b1, b2 + b3]`, so the second one adds the pairs as `F4::sum`.
+    let t = _mm_hadd_ps(_mm_hadd_ps(e, gx), _mm_hadd_ps(gy, gz));
     let mut a = [0.0f32; 4];
     // SAFETY: `a` holds four writable floats; unaligned store.
     _mm_storeu_ps(a.as_mut_ptr(), t);
-    (a[0] + a[1]) + (a[2] + a[3])
+    (a[0], [a[1], a[2], a[3]])
+}
+
+/// The 12 channels held as 8 + 4 lanes, added per lane as the 4-lane loop of [`data_term`]
+/// adds them: lane `l` is `((0 + ch l) + ch 4+l) + ch 8+l`.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+#[inline]
+unsafe fn fold(p8: std::arch::x86_64::__m256, p4: std::arch::x86_64::__m128) -> std::arch::x86_64::__m128 {
+    use std::arch::x86_64::*;
+    let lo = _mm_add_ps(_mm_setzero_ps(), _mm256_castps256_ps128(p8));
+    _mm_add_ps(_mm_add_ps(lo, _mm256_extractf128_ps::<1>(p8)), p4)
 }
 
 #[cfg(test)]
