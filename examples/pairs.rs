@@ -45,6 +45,7 @@ fn main() {
     let (mut sd, mut sf, mut ss, mut st, mut s0) = (0.0, 0.0, 0.0, 0.0, 0.0);
     let mut count = 0;
     let mut worst_fold: f64 = 0.0;
+    let mut per_label = vec![(0.0f64, 0usize); labels.len()];
     'outer: for i in 0..n {
         for j in i + 1..n {
             if count >= max_pairs {
@@ -66,6 +67,12 @@ fn main() {
                 js.sd_log_j,
                 reg.affine_s
             );
+            for (acc, (_, v)) in per_label.iter_mut().zip(&d) {
+                if let Some(v) = v {
+                    acc.0 += v;
+                    acc.1 += 1;
+                }
+            }
             sd += dm;
             s0 += dm0;
             sf += 100.0 * js.folding_fraction;
@@ -84,4 +91,10 @@ fn main() {
         ss / c,
         st / c
     );
+    let names: Vec<String> = LABELS
+        .iter()
+        .zip(&per_label)
+        .map(|((_, name), (s, k))| format!("{name} {:.3}", s / (*k).max(1) as f64))
+        .collect();
+    println!("per label: {}", names.join("  "));
 }
