@@ -71,7 +71,7 @@ fn json_matches_nibabel() {
             .collect();
         for c in 0..3 {
             let norm = (0..3).map(|r| aff[r][c] * aff[r][c]).sum::<f64>().sqrt();
-            assert!((got["spacing_mm"][c].as_f64().unwrap() - norm).abs() < 1e-5, "{name}");
+            assert!(approx::abs_diff_eq!(got["spacing_mm"][c].as_f64().unwrap(), norm, epsilon = 1e-5), "{name}");
         }
     }
     // Integer file: label values with voxel counts, counted from nibabel's data.

@@ -101,7 +101,7 @@ fn one_recipe_brings_differently_oriented_and_spaced_scans_onto_one_grid() {
         assert_eq!(ci["axcodes"], "RAS", "{name}");
         assert_eq!(ci["shape"], serde_json::json!([72, 56, 96]), "{name}");
         for sp in ci["spacing"].as_array().unwrap() {
-            assert!((sp.as_f64().unwrap() - 4.0).abs() < 1e-5, "{name}: spacing {sp}");
+            assert!(approx::abs_diff_eq!(sp.as_f64().unwrap(), 4.0, epsilon = 1e-5), "{name}: spacing {sp}");
         }
         // scipy.ndimage.affine_transform (order 1) + closed-form window/unit scaling: the
         // output holds the input at the world position of each voxel centre.
@@ -124,7 +124,7 @@ fn one_recipe_brings_differently_oriented_and_spaced_scans_onto_one_grid() {
     for ((i, j, k), &v) in o_img.data.indexed_iter() {
         if let Some([a, b, c]) = same_world_voxel(&o_img.grid, &d_img.grid, [i, j, k]) {
             let want = (d_img.data[[a, b, c]].clamp(-1000.0, 1500.0) as f64 + 1000.0) / 2500.0;
-            assert!((v as f64 - want).abs() < 1e-6, "({i},{j},{k}): {v} vs {want}");
+            assert!(approx::abs_diff_eq!(v as f64, want, epsilon = 1e-6), "({i},{j},{k}): {v} vs {want}");
             assert_eq!(o_lab.data[[i, j, k]], d_lab.data[[a, b, c]]);
             overlap += 1;
         } else {

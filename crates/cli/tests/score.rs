@@ -99,7 +99,7 @@ fn every_field_form_recovers_a_known_shift() {
         let v = json(&sinew(&args.iter().map(String::as_str).collect::<Vec<_>>()));
         let l = &v["score"]["labels"][0];
         // Closed form before: boxes of 6·5·4 = 120 voxels overlapping in 4·5·4 = 80: Dice 2/3.
-        assert!((l["dice_before"].as_f64().unwrap() - 2.0 / 3.0).abs() < 1e-12, "{what}");
+        assert!(approx::abs_diff_eq!(l["dice_before"].as_f64().unwrap(), 2.0 / 3.0, epsilon = 1e-12), "{what}");
         // After: the exact inverse shift, so Dice 1 and all surface distances 0 (exact).
         assert_eq!(l["dice"].as_f64(), Some(1.0), "{what}");
         assert_eq!(l["surface"]["hd95_mm"].as_f64(), Some(0.0), "{what}");
@@ -108,7 +108,10 @@ fn every_field_form_recovers_a_known_shift() {
         assert!(v["score"]["jacobian"]["sd_log_j"].as_f64().unwrap().abs() < 1e-6, "{what}");
         // Landmarks: exact mapping after, 4 mm apart before.
         assert!(v["landmarks"]["max_mm"].as_f64().unwrap() < 1e-5, "{what}");
-        assert!((v["landmarks"]["mean_before_mm"].as_f64().unwrap() - 4.0).abs() < 1e-9, "{what}");
+        assert!(
+            approx::abs_diff_eq!(v["landmarks"]["mean_before_mm"].as_f64().unwrap(), 4.0, epsilon = 1e-9),
+            "{what}"
+        );
         assert_eq!(v["field"]["direction"], if what == "push" { "push" } else { "pull" });
         assert_eq!(v["field"]["inverted"].is_null(), what != "push", "{what}");
         if what == "push" {
@@ -178,9 +181,9 @@ print(json.dumps(out))
         let r = &reference[l["label"].to_string()];
         for (ours, theirs) in [("hd95_mm", "hd95"), ("hd_mm", "hd"), ("assd_mm", "assd")] {
             let (a, b) = (l["surface"][ours].as_f64().unwrap(), r[theirs].as_f64().unwrap());
-            assert!((a - b).abs() < 0.01, "label {}: {ours} {a} vs scipy {b}", l["label"]);
+            assert!(approx::abs_diff_eq!(a, b, epsilon = 0.01), "label {}: {ours} {a} vs scipy {b}", l["label"]);
         }
-        assert!((l["dice"].as_f64().unwrap() - r["dice"].as_f64().unwrap()).abs() < 1e-12);
+        approx::assert_abs_diff_eq!(l["dice"].as_f64().unwrap(), r["dice"].as_f64().unwrap(), epsilon = 1e-12);
     }
     assert!(v["score"]["labels"][0]["surface"]["hd95_mm"].as_f64().unwrap() > 0.5, "a non-trivial case");
 

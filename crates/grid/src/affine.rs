@@ -191,7 +191,7 @@ mod tests {
         let p = [1.0, 2.0, 3.0];
         let q = i.apply(a.apply(p));
         for d in 0..3 {
-            assert!((q[d] - p[d]).abs() < 1e-12);
+            approx::assert_abs_diff_eq!(q[d], p[d], epsilon = 1e-12);
         }
         assert!(Affine::from_parts([[1.0, 0.0, 0.0], [2.0, 0.0, 0.0], [0.0, 0.0, 1.0]], [0.0; 3]).inverse().is_none());
     }

@@ -280,7 +280,7 @@ mod tests {
         }
         for p in [[0.3, 1.7, 4.2], [2.999, 0.0, 0.5], [3.0, 4.0, 5.0]] {
             let v = trilinear(&data, shape, p, Border::Nearest);
-            assert!((v - f(p[0], p[1], p[2])).abs() < 1e-5, "{p:?}");
+            assert!(approx::abs_diff_eq!(v, f(p[0], p[1], p[2]), epsilon = 1e-5), "{p:?}");
         }
         // grid-constant: half a voxel outside blends half of the constant in
         let v = trilinear(&data, shape, [-0.5, 0.0, 0.0], Border::Constant(0.0));
@@ -335,9 +335,9 @@ mod tests {
         for p in [[0.3, 1.7, 4.2], [2.6, 3.4, 0.45], [1.5, 0.2, 4.9]] {
             let (v, g) = value_and_slope(&data, shape, p);
             let tv = trilinear(&data, shape, p.map(|x| x as f32), Border::Nearest) as f64;
-            assert!((v - tv).abs() < 1e-5, "{p:?}: {v} vs {tv}");
+            assert!(approx::abs_diff_eq!(v, tv, epsilon = 1e-5), "{p:?}: {v} vs {tv}");
             for (a, ga) in g.iter().enumerate() {
-                assert!((ga - fd(p, a)).abs() < 1e-3, "{p:?} axis {a}: {ga} vs {}", fd(p, a));
+                assert!(approx::abs_diff_eq!(*ga, fd(p, a), epsilon = 1e-3), "{p:?} axis {a}: {ga} vs {}", fd(p, a));
             }
         }
         // Beyond every face: the value is that of the clamped position, the slopes along the
@@ -350,9 +350,9 @@ mod tests {
                 let mut q = p;
                 q[axis] = q[axis].clamp(0.0, shape[axis] as f64 - 1.0);
                 let (v, g) = value_and_slope(&data, shape, p);
-                assert!((v - value(q)).abs() < 1e-6, "axis {axis} at {outside}: value");
+                assert!(approx::abs_diff_eq!(v, value(q), epsilon = 1e-6), "axis {axis} at {outside}: value");
                 let tv = trilinear(&data, shape, p.map(|x| x as f32), Border::Nearest) as f64;
-                assert!((v - tv).abs() < 1e-5, "axis {axis} at {outside}: Border::Nearest");
+                assert!(approx::abs_diff_eq!(v, tv, epsilon = 1e-5), "axis {axis} at {outside}: Border::Nearest");
                 for (a, &ga) in g.iter().enumerate() {
                     let want = if a == axis {
                         let mut r = p;
@@ -361,7 +361,10 @@ mod tests {
                     } else {
                         fd(p, a)
                     };
-                    assert!((ga - want).abs() < 1e-3, "axis {axis} at {outside}, slope {a}: {ga} vs {want}");
+                    assert!(
+                        approx::abs_diff_eq!(ga, want, epsilon = 1e-3),
+                        "axis {axis} at {outside}, slope {a}: {ga} vs {want}"
+                    );
                     if a == axis {
                         assert!(ga.abs() > 0.05, "the edge cell's slope is not zero here");
                     }
@@ -398,7 +401,7 @@ mod tests {
                 pp[a] += h;
                 pm[a] -= h;
                 let fd = (eval(pp, true).0 - eval(pm, true).0) / (2.0 * h);
-                assert!((ga - fd).abs() < 1e-3, "{p:?} axis {a}: {ga} vs {fd}");
+                assert!(approx::abs_diff_eq!(ga, fd, epsilon = 1e-3), "{p:?} axis {a}: {ga} vs {fd}");
                 if !(0.0..=(shape[a] - 1) as f64).contains(&p[a]) {
                     assert_eq!(ga, 0.0, "{p:?} axis {a}: beyond the face");
                     beyond += 1;

@@ -230,12 +230,15 @@ mod antialias_tests {
         let predicted = per_axis.powi(3);
         // 64 000 nearly independent samples: the estimate's relative standard error is about
         // √(2/64000) ≈ 0.6 %; 5 % leaves room for the residual correlation between neighbours.
-        assert!((var / predicted - 1.0).abs() < 0.05, "variance {var:.3e} vs predicted {predicted:.3e}");
+        assert!(
+            approx::abs_diff_eq!(var / predicted, 1.0, epsilon = 0.05),
+            "variance {var:.3e} vs predicted {predicted:.3e}"
+        );
         // Without the filter the variance is that of plain interpolation of white noise,
         // `(0.25² + 0.75²)³ ≈ 0.244`, about 50 times more.
         let plain = resample_image(&img, &target, Border::Nearest);
         let pv = plain.data.iter().map(|&v| (v as f64).powi(2)).sum::<f64>() / plain.data.len() as f64;
-        assert!((pv / 0.625f64.powi(3) - 1.0).abs() < 0.05, "plain variance {pv}");
+        assert!(approx::abs_diff_eq!(pv / 0.625f64.powi(3), 1.0, epsilon = 0.05), "plain variance {pv}");
 
         // A smooth ramp is unchanged: a symmetric kernel keeps a linear function (exact fact),
         // and trilinear interpolation reproduces it; checked away from the repeated edges.
@@ -250,7 +253,7 @@ mod antialias_tests {
             if [i, j, k].iter().all(|&c| (2..42).contains(&c)) {
                 let w = target.voxel_to_world([i as f64, j as f64, k as f64]);
                 let expect = 0.5 * w[0] - 0.25 * w[1] + 0.1 * w[2];
-                assert!((v as f64 - expect).abs() < 1e-3, "ramp at {i},{j},{k}: {v} vs {expect}");
+                assert!(approx::abs_diff_eq!(v as f64, expect, epsilon = 1e-3), "ramp at {i},{j},{k}: {v} vs {expect}");
             }
         }
     }

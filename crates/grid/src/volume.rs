@@ -274,11 +274,11 @@ mod tests {
         }
         let mm = f.to_world_mm();
         // u_mm = M·u_vox: x = -2·u_j, y = 1.5·u_i, z = 3·u_k
-        assert!((mm[[1, 2, 1, 0]] - (-2.0 * f.data[[1, 1, 2, 1]])).abs() < 1e-6);
-        assert!((mm[[1, 2, 1, 1]] - (1.5 * f.data[[0, 1, 2, 1]])).abs() < 1e-6);
+        approx::assert_abs_diff_eq!(mm[[1, 2, 1, 0]], (-2.0 * f.data[[1, 1, 2, 1]]), epsilon = 1e-6);
+        approx::assert_abs_diff_eq!(mm[[1, 2, 1, 1]], (1.5 * f.data[[0, 1, 2, 1]]), epsilon = 1e-6);
         let back = Field::from_world_mm(g, &mm).unwrap();
         for (x, y) in back.data.iter().zip(f.data.iter()) {
-            assert!((x - y).abs() < 1e-5);
+            approx::assert_abs_diff_eq!(x, y, epsilon = 1e-5);
         }
         let cl = f.to_voxel_channel_last();
         assert_eq!(cl[[2, 3, 1, 2]], f.data[[2, 2, 3, 1]]);

@@ -520,9 +520,9 @@ mod tests {
         for c1 in 0..3 {
             for c2 in 0..3 {
                 let dot: f64 = (0..3).map(|r| l[r][c1] * l[r][c2]).sum();
-                assert!((dot - if c1 == c2 { 1.0 } else { 0.0 }).abs() < 1e-12);
+                approx::assert_abs_diff_eq!(dot, if c1 == c2 { 1.0 } else { 0.0 }, epsilon = 1e-12);
             }
         }
-        assert!((sp[1] - (1.0f64 + 0.04).sqrt()).abs() < 1e-12);
+        approx::assert_abs_diff_eq!(sp[1], (1.0f64 + 0.04).sqrt(), epsilon = 1e-12);
     }
 }

@@ -47,7 +47,7 @@ fn headers_and_affines_match_nibabel() {
             for (r, row) in affine_rows(&exp["affine"]).iter().enumerate() {
                 for c in 0..4 {
                     assert!(
-                        (ours[r][c] - row[c]).abs() < 1e-5,
+                        approx::abs_diff_eq!(ours[r][c], row[c], epsilon = 1e-5),
                         "{name}: affine[{r}][{c}] {} vs nibabel {}",
                         ours[r][c],
                         row[c]

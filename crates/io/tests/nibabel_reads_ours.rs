@@ -58,7 +58,7 @@ fn check_affine(name: &str, got: &Value, grid: &Grid) {
     for (r, row) in rows(got).iter().take(3).enumerate() {
         for (c, &ours) in grid.affine().m[r].iter().enumerate() {
             assert!(
-                (row[c] - ours).abs() <= 1e-5 * ours.abs().max(1.0),
+                approx::abs_diff_eq!(row[c], ours, epsilon = 1e-5 * ours.abs().max(1.0)),
                 "{name}: affine[{r}][{c}] {} vs {ours}",
                 row[c]
             );
@@ -123,7 +123,7 @@ fn nibabel_reads_what_we_write() {
         let sp = g.spacing();
         let pix = f64s(&v["pixdim"]);
         for a in 0..3 {
-            assert!((pix[a + 1] - sp[a]).abs() < 1e-5, "{name}: pixdim");
+            assert!(approx::abs_diff_eq!(pix[a + 1], sp[a], epsilon = 1e-5), "{name}: pixdim");
         }
     }
     // Values in C order of (i, j, k) = our standard layout.
@@ -142,7 +142,10 @@ fn nibabel_reads_what_we_write() {
     for c1 in 0..3 {
         for c2 in 0..3 {
             let dot: f64 = (0..3).map(|r| q[r][c1] / pix[c1 + 1] * q[r][c2] / pix[c2 + 1]).sum();
-            assert!((dot - if c1 == c2 { 1.0 } else { 0.0 }).abs() < 1e-5, "qform not rigid: {q:?}");
+            assert!(
+                approx::abs_diff_eq!(dot, if c1 == c2 { 1.0 } else { 0.0 }, epsilon = 1e-5),
+                "qform not rigid: {q:?}"
+            );
         }
     }
 

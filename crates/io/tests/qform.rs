@@ -23,7 +23,7 @@ fn qform_round_trips_rotations_and_flips() {
             assert_eq!(qfac, flip);
             let back = qform_affine(q, sp, qfac, off);
             for (x, y) in back.m.iter().flatten().zip(a.m.iter().flatten()) {
-                assert!((x - y).abs() < 1e-12, "{ax} {deg} {flip}: {back:?} vs {a:?}");
+                assert!(approx::abs_diff_eq!(x, y, epsilon = 1e-12), "{ax} {deg} {flip}: {back:?} vs {a:?}");
             }
         }
     }

@@ -80,7 +80,7 @@ fn field_round_trip_both_units() {
         let (back, used) = read_field(&p, FieldReadOptions { units: Some(other), ..Default::default() }).unwrap();
         assert_eq!(used, units);
         for (a, b) in back.data.iter().zip(f.data.iter()) {
-            assert!((a - b).abs() < 1e-5, "{a} vs {b}");
+            assert!(approx::abs_diff_eq!(a, b, epsilon = 1e-5), "{a} vs {b}");
         }
     }
 }

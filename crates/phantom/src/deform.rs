@@ -43,6 +43,6 @@ mod tests {
     fn largest_vector_has_the_requested_length() {
         let g = Grid::axis_aligned([20, 16, 24], [2.0, 2.0, 3.0], [0.0; 3]);
         let f = known_field(&g, 15.0);
-        assert!((f.max_norm_mm() - 15.0).abs() < 1e-3, "{}", f.max_norm_mm());
+        assert!(approx::abs_diff_eq!(f.max_norm_mm(), 15.0, epsilon = 1e-3), "{}", f.max_norm_mm());
     }
 }

@@ -334,7 +334,7 @@ mod tests {
         for a in 0..3 {
             for b in 0..3 {
                 let d: f64 = (0..3).map(|k| r[k][a] * r[k][b]).sum();
-                assert!((d - if a == b { 1.0 } else { 0.0 }).abs() < 1e-12);
+                approx::assert_abs_diff_eq!(d, if a == b { 1.0 } else { 0.0 }, epsilon = 1e-12);
             }
         }
     }
@@ -346,8 +346,8 @@ mod tests {
         let b = Blob::new([3.0, -2.0, 5.0], rotation(0.4, 0.2, -0.5), [60.0, 40.0, 30.0], 0.0, 0.0, Wobble::default());
         let v = lattice_volume(b.bbox, 1.0, |p| b.level(p) < 1.0);
         let expect = 4.0 / 3.0 * std::f64::consts::PI * 60.0 * 40.0 * 30.0;
-        assert!((v / expect - 1.0).abs() < 0.01, "{v} vs {expect}");
-        assert!((b.volume_mm3() / expect - 1.0).abs() < 1e-12);
+        assert!(approx::abs_diff_eq!(v / expect, 1.0, epsilon = 0.01), "{v} vs {expect}");
+        approx::assert_abs_diff_eq!(b.volume_mm3() / expect, 1.0, epsilon = 1e-12);
     }
 
     #[test]
@@ -357,7 +357,7 @@ mod tests {
         let b = Blob::new([0.0; 3], rotation(0.0, 0.3, 0.2), [50.0, 30.0, 25.0], 0.25, 0.5, Wobble::default());
         let v = lattice_volume(b.bbox, 1.0, |p| b.level(p) < 1.0);
         let expect = 4.0 / 3.0 * std::f64::consts::PI * 50.0 * 30.0 * 25.0 * (1.0 + 0.25 / 5.0);
-        assert!((v / expect - 1.0).abs() < 0.01, "{v} vs {expect}");
+        assert!(approx::abs_diff_eq!(v / expect, 1.0, epsilon = 0.01), "{v} vs {expect}");
     }
 
     #[test]
@@ -368,7 +368,7 @@ mod tests {
         let b = Blob::new([0.0; 3], rotation(0.0, 0.0, 0.0), [40.0, 30.0, 30.0], 0.0, 0.0, w);
         let v = lattice_volume(b.bbox, 1.0, |p| b.level(p) < 1.0);
         let v0 = b.volume_mm3();
-        assert!((v / v0 - 1.0).abs() < 0.03, "{v} vs {v0}");
+        assert!(approx::abs_diff_eq!(v / v0, 1.0, epsilon = 0.03), "{v} vs {v0}");
         // and the bounding box really bounds the shape: nothing inside on its faces
         let bb = b.bbox;
         for t in 0..=100 {
@@ -392,10 +392,10 @@ mod tests {
         let v = lattice_volume(t.bbox.unwrap(), 1.0, |p| t.inside(p).is_some());
         let pi = std::f64::consts::PI;
         let expect = pi * 144.0 * 100.0 + 4.0 / 3.0 * pi * 1728.0;
-        assert!((v / expect - 1.0).abs() < 0.01, "{v} vs {expect}");
-        assert!((t.volume_mm3() - pi * 144.0 * 100.0).abs() < 1e-6);
+        assert!(approx::abs_diff_eq!(v / expect, 1.0, epsilon = 0.01), "{v} vs {expect}");
+        approx::assert_abs_diff_eq!(t.volume_mm3(), pi * 144.0 * 100.0, epsilon = 1e-6);
         let hit = t.inside(&[5.0, 0.0, 10.0]).unwrap();
-        assert!((hit.depth - 7.0).abs() < 1e-12);
+        approx::assert_abs_diff_eq!(hit.depth, 7.0, epsilon = 1e-12);
         assert_eq!(hit.axis, [0.0, 0.0, 10.0]);
     }
 }

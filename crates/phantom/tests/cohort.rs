@@ -158,7 +158,7 @@ fn noise_has_the_requested_standard_deviation() {
     }
     let sigma = (acc / n as f64 / 2.0).sqrt();
     // n ≈ 64 000 pairs: relative standard error of σ̂ about 1/√(2n) ≈ 0.3 %
-    assert!((sigma - 12.0).abs() < 0.3, "noise σ {sigma:.2} from {n} pairs");
+    assert!(approx::abs_diff_eq!(sigma, 12.0, epsilon = 0.3), "noise σ {sigma:.2} from {n} pairs");
 }
 
 #[test]
@@ -217,7 +217,7 @@ fn small_grid_covers_the_default_field_of_view() {
     for l in [1u16, 2, 3, 4] {
         let ((ca, na), (cb, nb)) = (centroid(&a, l), centroid(&b, l));
         let (va, vb) = (na as f64 * 8.0, nb as f64 * 64.0);
-        assert!((va / vb - 1.0).abs() < 0.1, "label {l}: {va} vs {vb} mm³");
+        assert!(approx::abs_diff_eq!(va / vb, 1.0, epsilon = 0.1), "label {l}: {va} vs {vb} mm³");
         assert!(dist(ca, cb) < 2.0, "label {l}: centroids {ca:?} vs {cb:?}");
     }
 }

@@ -122,7 +122,7 @@ mod tests {
         for ((i, _, _), &v) in img.data.indexed_iter() {
             let hu = (-1200.0 + 100.0 * i as f64).clamp(-1000.0, 1500.0);
             let want = (hu + 1000.0) / 2500.0;
-            assert!((v as f64 - want).abs() < 1e-7, "i={i}: {v} vs {want}");
+            assert!(approx::abs_diff_eq!(v as f64, want, epsilon = 1e-7), "i={i}: {v} vs {want}");
         }
         assert!(Window::new(1.0, 1.0).is_err());
         assert!(Window::new(f32::NAN, 1.0).is_err());
@@ -139,12 +139,12 @@ mod tests {
         }
         let (mean, std, n) = zscore(&mut img, &mask).unwrap();
         assert_eq!(n, 11 * 6);
-        assert!((mean - 300.0).abs() < 1e-9);
+        approx::assert_abs_diff_eq!(mean, 300.0, epsilon = 1e-9);
         let sd = 100.0 * 10f64.sqrt();
-        assert!((std - sd).abs() < 1e-9);
+        approx::assert_abs_diff_eq!(std, sd, epsilon = 1e-9);
         for ((i, _, _), &v) in img.data.indexed_iter() {
             let want = (-1200.0 + 100.0 * i as f64 - 300.0) / sd;
-            assert!((v as f64 - want).abs() < 1e-6);
+            approx::assert_abs_diff_eq!(v as f64, want, epsilon = 1e-6);
         }
         let flat = Image::filled(img.grid.clone(), 3.0);
         assert!(matches!(zscore(&mut flat.clone(), &mask), Err(PrepError::ConstantInMask { .. })));

@@ -101,7 +101,10 @@ fn reorientation_agrees_with_nibabel_for_all_48_codes() {
             let got = out.grid.affine().to_4x4();
             for r in 0..4 {
                 for c in 0..4 {
-                    assert!((got[r][c] - aff[r][c]).abs() < 1e-9, "affine {n}, {code}: {got:?} vs {aff:?}");
+                    assert!(
+                        approx::abs_diff_eq!(got[r][c], aff[r][c], epsilon = 1e-9),
+                        "affine {n}, {code}: {got:?} vs {aff:?}"
+                    );
                 }
             }
             assert_eq!(out.grid.orientation(), *code);

@@ -277,7 +277,7 @@ mod tests {
         let mut img = RgbImage::new(80, 20, [0, 0, 0]);
         let style = TextStyle { bold: false, px: 14.0, colour: [255, 255, 255] };
         let w = img.text(2.0, 2.0, "Dice", style);
-        assert!((w - text_width("Dice", style)).abs() < 1e-3);
+        approx::assert_abs_diff_eq!(w, text_width("Dice", style), epsilon = 1e-3);
         let lit: Vec<(u32, u32)> =
             (0..20).flat_map(|y| (0..80).map(move |x| (x, y))).filter(|&(x, y)| img.pixel(x, y)[0] > 0).collect();
         assert!(lit.len() > 20);

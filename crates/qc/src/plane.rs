@@ -281,7 +281,7 @@ mod tests {
         for &(n, w, flip) in &[(10usize, 25u32, false), (7, 7, true), (33, 12, true)] {
             for u in 0..w {
                 let t = voxel_coord(u, n, w, flip);
-                assert!((pixel_coord(t, n, w, flip) - (u as f64 + 0.5)).abs() < 1e-9);
+                approx::assert_abs_diff_eq!(pixel_coord(t, n, w, flip), (u as f64 + 0.5), epsilon = 1e-9);
             }
         }
         // Exact: with w = n the pixel centres are the voxel centres.

@@ -481,7 +481,7 @@ mod tests {
         // np.std([1, 2, 3, 4], ddof=1) = sqrt(5/3) (sample), not the population sqrt(5/4).
         let (m, sd, med) = mean_sd_median(&[4.0, 1.0, 3.0, 2.0]);
         assert_eq!((m, med), (Some(2.5), Some(2.5)));
-        assert!((sd.unwrap() - (5.0f64 / 3.0).sqrt()).abs() < 1e-15);
+        approx::assert_abs_diff_eq!(sd.unwrap(), (5.0f64 / 3.0).sqrt(), epsilon = 1e-15);
         assert_eq!(mean_sd_median(&[0.7]), (Some(0.7), None, Some(0.7)));
     }
 

@@ -75,12 +75,12 @@ mod tests {
         // label 9 only in B: Dice 0; label 11 in neither: undefined
         boxed([0, 0, 0], [1, 1, 1], 9, &mut b);
         let d = dice_per_label(&a, &b, &[3, 7, 9, 11]).unwrap();
-        assert!((d[0].1.unwrap() - 0.45).abs() < 1e-15);
-        assert!((d[1].1.unwrap() - 2.0 / 3.0).abs() < 1e-15);
+        approx::assert_abs_diff_eq!(d[0].1.unwrap(), 0.45, epsilon = 1e-15);
+        approx::assert_abs_diff_eq!(d[1].1.unwrap(), 2.0 / 3.0, epsilon = 1e-15);
         assert_eq!(d[2], (9, Some(0.0)));
         assert_eq!(d[3], (11, None));
         let m = mean_dice(&d).unwrap();
-        assert!((m - (0.45 + 2.0 / 3.0) / 3.0).abs() < 1e-15);
+        approx::assert_abs_diff_eq!(m, (0.45 + 2.0 / 3.0) / 3.0, epsilon = 1e-15);
         assert_eq!(mean_dice(&[(1, None)]), None);
         // identical maps: Dice 1 (exact fact)
         assert_eq!(dice_per_label(&a, &a, &[3]).unwrap(), vec![(3, Some(1.0))]);

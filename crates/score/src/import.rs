@@ -308,7 +308,11 @@ mod tests {
             }
             let want = linear(d, [i as f64, j as f64, k as f64]);
             let got = field.data[[d, i, j, k]] as f64;
-            assert!((got - want).abs() < tol, "component {d} at {:?}: {got} vs {want}", [i, j, k]);
+            assert!(
+                approx::abs_diff_eq!(got, want, epsilon = tol),
+                "component {d} at {:?}: {got} vs {want}",
+                [i, j, k]
+            );
         }
     }
 

@@ -94,7 +94,10 @@ mod tests {
             let x = [i as f64 - c[0], j as f64 - c[1], k as f64 - c[2]];
             for d in 0..3 {
                 let exact = inv_m[d][0] * x[0] + inv_m[d][1] * x[1] + inv_m[d][2] * x[2] - x[d];
-                assert!((inv.field.data[[d, i, j, k]] as f64 - exact).abs() < 1e-4, "{d} {i} {j} {k}");
+                assert!(
+                    approx::abs_diff_eq!(inv.field.data[[d, i, j, k]] as f64, exact, epsilon = 1e-4),
+                    "{d} {i} {j} {k}"
+                );
             }
         }
     }

@@ -93,9 +93,13 @@ mod tests {
         let y = [[x[0][0], x[0][1] - 2.0, x[0][2] + 6.0], [x[1][0] + 3.0, x[1][1] - 2.0, x[1][2] + 10.0]];
         let e = landmark_errors(&f, &x, &y).unwrap();
         assert!(e.per_landmark_mm[0] < 1e-9);
-        assert!((e.per_landmark_mm[1] - 5.0).abs() < 1e-9); // |(−3, 0, −4)| = 5
+        approx::assert_abs_diff_eq!(e.per_landmark_mm[1], 5.0, epsilon = 1e-9); // |(−3, 0, −4)| = 5
         assert!((e.mean_mm - 2.5).abs() < 1e-9 && (e.max_mm - 5.0).abs() < 1e-9 && (e.median_mm - 2.5).abs() < 1e-9);
-        assert!((e.mean_before_mm - (40f64.sqrt() + 3f64.hypot(2.0).hypot(10.0)) / 2.0).abs() < 1e-9);
+        approx::assert_abs_diff_eq!(
+            e.mean_before_mm,
+            (40f64.sqrt() + 3f64.hypot(2.0).hypot(10.0)) / 2.0,
+            epsilon = 1e-9
+        );
         assert!(matches!(landmark_errors(&f, &x, &y[..1]), Err(ScoreError::LandmarkCount { .. })));
         let far = [g.voxel_to_world([12.0, 0.0, 0.0])];
         assert!(matches!(landmark_errors(&f, &far, &far), Err(ScoreError::LandmarkOutside { index: 0, .. })));

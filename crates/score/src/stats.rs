@@ -25,7 +25,7 @@ use serde::{Deserialize, Serialize};
 /// # Example
 /// ```
 /// // np.percentile([1, 2, 3, 4], 30) == 1.9
-/// assert!((sinew_score::percentile_linear(&[1.0, 2.0, 3.0, 4.0], 30.0) - 1.9).abs() < 1e-12);
+/// approx::assert_abs_diff_eq!(sinew_score::percentile_linear(&[1.0, 2.0, 3.0, 4.0], 30.0), 1.9, epsilon = 1e-12);
 /// ```
 #[track_caller]
 pub fn percentile_linear(sorted: &[f64], p: f64) -> f64 {
@@ -113,14 +113,14 @@ mod tests {
         let x = [3.0, 1.0, 4.0, 1.0, 5.0, 9.0, 2.0, 6.0];
         let s = Summary::of(&x).unwrap();
         assert_eq!(s.n, 8);
-        assert!((s.mean - 3.875).abs() < 1e-15);
+        approx::assert_abs_diff_eq!(s.mean, 3.875, epsilon = 1e-15);
         assert!((s.robust - 2.1).abs() < 1e-12 && s.robust_percentile == 30.0);
         // np.percentile(x, 10): h = 0.7 → 1 + 0.7·(1 − 1) = 1; np.percentile(x, 90): h = 6.3 →
         // 6 + 0.3·(9 − 6) = 6.9.
         assert_eq!(Summary::with_percentile(&x, 10.0).unwrap().robust, 1.0);
-        assert!((Summary::with_percentile(&x, 90.0).unwrap().robust - 6.9).abs() < 1e-12);
-        assert!((s.median - 3.5).abs() < 1e-15);
-        assert!((s.std.unwrap() - (52.875f64 / 7.0).sqrt()).abs() < 1e-12);
+        approx::assert_abs_diff_eq!(Summary::with_percentile(&x, 90.0).unwrap().robust, 6.9, epsilon = 1e-12);
+        approx::assert_abs_diff_eq!(s.median, 3.5, epsilon = 1e-15);
+        approx::assert_abs_diff_eq!(s.std.unwrap(), (52.875f64 / 7.0).sqrt(), epsilon = 1e-12);
         let one = Summary::of(&[0.7]).unwrap();
         assert_eq!((one.std, one.median, one.robust), (None, 0.7, 0.7));
         assert_eq!(Summary::of(&[]), None);

@@ -159,8 +159,8 @@ mod tests {
             ball(&mut b, r2, 2);
             let s = surface_distances(&a, &b, &[2]).unwrap()[0].1.clone().unwrap();
             let voxel = spacing.iter().copied().fold(0.0, f64::max);
-            assert!((s.hd95_mm - (r2 - r1)).abs() <= voxel, "hd95 {} vs {}", s.hd95_mm, r2 - r1);
-            assert!((s.assd_mm - (r2 - r1)).abs() <= voxel, "assd {}", s.assd_mm);
+            assert!(approx::abs_diff_eq!(s.hd95_mm, (r2 - r1), epsilon = voxel), "hd95 {} vs {}", s.hd95_mm, r2 - r1);
+            assert!(approx::abs_diff_eq!(s.assd_mm, (r2 - r1), epsilon = voxel), "assd {}", s.assd_mm);
             assert!(s.hd_mm >= s.hd95_mm && s.hd95_mm >= 0.0);
         }
     }

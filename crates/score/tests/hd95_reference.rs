@@ -37,7 +37,7 @@ fn surface_distances_match_scipy() {
                 Some(s) => {
                     for (name, v) in [("hd95", s.hd95_mm), ("hd", s.hd_mm), ("assd", s.assd_mm)] {
                         let w = want[name].as_f64().unwrap();
-                        assert!((v - w).abs() < 1e-9, "label {l} {name}: sinew {v}, scipy {w}");
+                        assert!(approx::abs_diff_eq!(v, w, epsilon = 1e-9), "label {l} {name}: sinew {v}, scipy {w}");
                     }
                     compared += 1;
                 }

@@ -80,7 +80,7 @@ mod tests {
             opt.step(&mut th, &g);
         }
         for n in 0..3 {
-            assert!((th[n] - c[n]).abs() < 1e-2, "{th:?}");
+            assert!(approx::abs_diff_eq!(th[n], c[n], epsilon = 1e-2), "{th:?}");
         }
     }
 }

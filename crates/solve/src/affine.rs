@@ -634,7 +634,7 @@ mod tests {
                 let fd = (ep - em) / (2.0 * h);
                 let gmax = grad.iter().fold(0.0f64, |a, g| a.max(g.abs()));
                 assert!(
-                    (fd - grad[idx]).abs() <= 2e-2 * fd.abs() + 2e-3 * gmax,
+                    approx::abs_diff_eq!(fd, grad[idx], epsilon = 2e-2 * fd.abs() + 2e-3 * gmax),
                     "{mode:?} {idx}: {fd} vs {}",
                     grad[idx]
                 );

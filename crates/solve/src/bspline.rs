@@ -115,7 +115,7 @@ mod tests {
             let fd = central_difference(&mut theta, idx, h, |th| energy(&mut model, th, &mut scratch));
             eprintln!("{idx}: fd {fd:.6e} analytic {:.6e}", grad[idx]);
             assert!(
-                (fd - grad[idx] as f64).abs() <= 1e-2 * fd.abs() + 1e-3 * gmax,
+                approx::abs_diff_eq!(fd, grad[idx] as f64, epsilon = 1e-2 * fd.abs() + 1e-3 * gmax),
                 "index {idx}: {fd} vs {}",
                 grad[idx]
             );

@@ -380,13 +380,13 @@ mod tests {
         assert!(t > 0.0 && t < 100.0);
         let b = body_moments(&img, &m, t);
         for (d, a) in [40.0f64, 25.0, 15.0].iter().enumerate() {
-            assert!((b.extents_mm[d] - a / 5f64.sqrt()).abs() < 0.4, "{:?}", b.extents_mm);
+            assert!(approx::abs_diff_eq!(b.extents_mm[d], a / 5f64.sqrt(), epsilon = 0.4), "{:?}", b.extents_mm);
             assert!(b.axes[d][d].abs() > 0.999);
             assert!(b.centre_mm[d].abs() < 1.0 + 1e-9);
         }
         // Ellipsoid volume 4/3·π·abc (exact) in ml.
         let v = 4.0 / 3.0 * std::f64::consts::PI * 40.0 * 25.0 * 15.0 / 1000.0;
-        assert!((b.volume_ml / v - 1.0).abs() < 0.05);
+        approx::assert_abs_diff_eq!(b.volume_ml / v, 1.0, epsilon = 0.05);
     }
 
     #[test]
@@ -406,7 +406,7 @@ mod tests {
         let (a, _, _) = initial_alignment(&f, &m, InitialMode::Auto);
         assert!(a.applied && a.overlap_identity < 0.01, "{a:?}");
         for (got, want) in a.centre_shift_mm.iter().zip(shift) {
-            assert!((got - want).abs() < 1.0, "{:?}", a.centre_shift_mm);
+            assert!(approx::abs_diff_eq!(*got, want, epsilon = 1.0), "{:?}", a.centre_shift_mm);
         }
         assert!(a.overlap_initial > 0.95, "{}", a.overlap_initial);
         // With the axes too: the same bodies have the same axes, so no rotation.
@@ -427,9 +427,9 @@ mod tests {
             std::array::from_fn(|i| std::array::from_fn(|j| (0..3).map(|k| r[i][k] * d[k] * r[j][k]).sum()));
         let (vals, vecs) = symmetric_eigen(m);
         for k in 0..3 {
-            assert!((vals[k] - d[k]).abs() < 1e-10);
+            approx::assert_abs_diff_eq!(vals[k], d[k], epsilon = 1e-10);
             let dot: f64 = (0..3).map(|i| vecs[k][i] * r[i][k]).sum();
-            assert!((dot.abs() - 1.0).abs() < 1e-10);
+            approx::assert_abs_diff_eq!(dot.abs(), 1.0, epsilon = 1e-10);
         }
     }
 }

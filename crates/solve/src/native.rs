@@ -556,7 +556,7 @@ mod tests {
         let want = a.apply(g.apply([y[0] + v[0], y[1] + v[1], y[2] + v[2]]));
         let got = g.apply([0, 1, 2].map(|d| y[d] + w.component(d)[n] as f64));
         for d in 0..3 {
-            assert!((want[d] - got[d]).abs() < 1e-4, "{want:?} {got:?}");
+            assert!(approx::abs_diff_eq!(want[d], got[d], epsilon = 1e-4), "{want:?} {got:?}");
         }
     }
 }

@@ -102,6 +102,6 @@ mod tests {
         p.adjoint(&b, &mut ptb);
         let lhs: f64 = pa.iter().zip(&b).map(|(x, y)| (*x as f64) * (*y as f64)).sum();
         let rhs: f64 = a.iter().zip(&ptb).map(|(x, y)| (*x as f64) * (*y as f64)).sum();
-        assert!((lhs - rhs).abs() < 1e-3 * lhs.abs().max(1.0), "{lhs} vs {rhs}");
+        assert!(approx::abs_diff_eq!(lhs, rhs, epsilon = 1e-3 * lhs.abs().max(1.0)), "{lhs} vs {rhs}");
     }
 }

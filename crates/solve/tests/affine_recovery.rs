@@ -76,7 +76,7 @@ fn rigid_stage_recovers_a_rigid_motion_within_a_millimetre() {
     eprintln!("rigid: mean endpoint error {mean:.3} mm, max {max:.3} mm, {:.2} s, {:?}", est.seconds, est.parameters);
     assert!(mean < 1.0, "mean endpoint error {mean:.3} mm");
     // Exact fact: a rotation has determinant 1.
-    assert!((est.affine().determinant() - 1.0).abs() < 1e-9);
+    approx::assert_abs_diff_eq!(est.affine().determinant(), 1.0, epsilon = 1e-9);
 }
 
 #[test]

@@ -218,11 +218,11 @@ mod tests {
         d.as_slice_mut().copy_from_slice(&[2.0, 0.5, -1.0, 1.0, f32::NAN]);
         let s = jacobian_stats(&d, Some(&[true, true, true, false, true]));
         assert_eq!((s.voxels, s.folded_voxels, s.non_finite, s.excluded_from_sdlogj), (3, 1, 1, 1));
-        assert!((s.folding_fraction - 1.0 / 3.0).abs() < 1e-15);
+        approx::assert_abs_diff_eq!(s.folding_fraction, 1.0 / 3.0, epsilon = 1e-15);
         // ln 2 and ln 0.5 = ±ln 2: mean 0, population sd = ln 2.
-        assert!((s.sd_log_j - 2f64.ln()).abs() < 1e-12);
+        approx::assert_abs_diff_eq!(s.sd_log_j, 2f64.ln(), epsilon = 1e-12);
         assert_eq!((s.min, s.max), (-1.0, 2.0));
-        assert!((s.mean - 0.5).abs() < 1e-15);
+        approx::assert_abs_diff_eq!(s.mean, 0.5, epsilon = 1e-15);
         let all = jacobian_stats(&d, None);
         assert_eq!(all.voxels, 4);
         let json = serde_json::to_value(&s).unwrap();

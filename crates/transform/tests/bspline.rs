@@ -65,7 +65,7 @@ fn adjoint_satisfies_the_inner_product_identity() {
         let lhs: f64 = pa.iter().zip(&bvec).map(|(x, y)| *x as f64 * *y as f64).sum();
         let rhs: f64 = a.iter().zip(&ptb).map(|(x, y)| *x as f64 * *y as f64).sum();
         let scale: f64 = pa.iter().zip(&bvec).map(|(x, y)| (*x as f64 * *y as f64).abs()).sum();
-        assert!((lhs - rhs).abs() <= 1e-5 * scale, "{shape:?}: {lhs} vs {rhs} (scale {scale})");
+        assert!(approx::abs_diff_eq!(lhs, rhs, epsilon = 1e-5 * scale), "{shape:?}: {lhs} vs {rhs} (scale {scale})");
     }
 }
 
@@ -115,7 +115,11 @@ fn bending_energy_vanishes_on_affine_maps_and_its_gradient_matches_finite_differ
         let em = bending_energy(&phi, cs, &geom, 0.0, &mut scratch);
         phi[idx] = orig;
         let fd = 0.7 * (ep - em) / (2.0 * h as f64);
-        assert!((fd - grad[idx] as f64).abs() <= 1e-3 * fd.abs().max(1e-6), "index {idx}: {fd} vs {}", grad[idx]);
+        assert!(
+            approx::abs_diff_eq!(fd, grad[idx] as f64, epsilon = 1e-3 * fd.abs().max(1e-6)),
+            "index {idx}: {fd} vs {}",
+            grad[idx]
+        );
     }
 }
 
@@ -131,6 +135,6 @@ fn evaluation_matches_scipy_bspline() {
     let mut u = vec![0.0f32; want.data.len()];
     b.expand(&phi, &mut u);
     for (n, (&g, &w)) in u.iter().zip(&want.data).enumerate() {
-        assert!((g as f64 - w).abs() < 1e-5, "value {n}: {g} vs {w}");
+        assert!(approx::abs_diff_eq!(g as f64, w, epsilon = 1e-5), "value {n}: {g} vs {w}");
     }
 }

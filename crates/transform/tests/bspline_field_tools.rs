@@ -29,7 +29,7 @@ fn a_field_composed_with_its_inverse_is_the_identity_within_a_tenth_of_a_voxel()
     // issue: mean |C| ≤ 0.1 voxel for smooth fields up to 10 mm.
     let g = Grid::axis_aligned([48, 40, 44], [2.0, 2.0, 2.5], [-10.0, 5.0, 0.0]);
     let u = smooth_field(&g, 10.0);
-    assert!((u.max_norm_mm() - 10.0).abs() < 1e-3, "{}", u.max_norm_mm());
+    assert!(approx::abs_diff_eq!(u.max_norm_mm(), 10.0, epsilon = 1e-3), "{}", u.max_norm_mm());
     let (v, report) = invert(&u, 30);
     eprintln!("inverse residual mean {:.4} max {:.4} voxels", report.mean_residual_vox, report.max_residual_vox);
     // Interior (the identity cannot hold where x + u(x) leaves the grid).

@@ -39,7 +39,7 @@ fn assert_close(got: &[f32], want_file: &str, tol: f64) {
     let want = npy::read(&npy::fixture(want_file));
     assert_eq!(got.len(), want.data.len());
     for (n, (&g, &w)) in got.iter().zip(&want.data).enumerate() {
-        assert!((g as f64 - w).abs() <= tol, "{want_file}: voxel {n}: {g} vs {w}");
+        assert!(approx::abs_diff_eq!(g as f64, w, epsilon = tol), "{want_file}: voxel {n}: {g} vs {w}");
     }
 }
 

@@ -257,9 +257,9 @@ mod tests {
         for n in 0..=20 {
             let t = n as f64 / 20.0;
             let w = cubic_weights(t);
-            assert!((w.iter().sum::<f64>() - 1.0).abs() < 1e-14);
+            approx::assert_abs_diff_eq!(w.iter().sum::<f64>(), 1.0, epsilon = 1e-14);
             let lin: f64 = w.iter().enumerate().map(|(a, wa)| wa * (a as f64 - 1.0)).sum();
-            assert!((lin - t).abs() < 1e-14, "{t}: {lin}");
+            assert!(approx::abs_diff_eq!(lin, t, epsilon = 1e-14), "{t}: {lin}");
         }
     }
 

@@ -124,6 +124,6 @@ mod tests {
         let b = bending_energy(&phi, shape, &geom, 0.0, &mut g);
         let mean_s = (10.0 + 12.0 + 9.0) / 3.0;
         let want = mean_s * mean_s * (2.0 * a) * (2.0 * a);
-        assert!((b - want).abs() < 1e-6 * want, "{b} vs {want}");
+        assert!(approx::abs_diff_eq!(b, want, epsilon = 1e-6 * want), "{b} vs {want}");
     }
 }
