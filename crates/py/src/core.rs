@@ -20,6 +20,7 @@ use serde::Serialize;
 use serde_json::{Map, Value};
 use sinew_grid::{Affine, Field, Grid, Image, LabelMap, Volume, WorldPoint};
 use sinew_solve::frames::InitialAlignment;
+pub use sinew_solve::nan::{NanPolicy, NanRecord};
 use sinew_solve::scans::GridSummary;
 pub use sinew_solve::{with_threads, InitialMode, ScanOptions, Timings};
 use sinew_solve::{Progress, RegParams};
@@ -255,6 +256,8 @@ pub struct Report {
     pub sinew_version: &'static str,
     /// The parameters used.
     pub params: RegParams,
+    /// What was done with NaN or infinite voxels (the policy and the counts).
+    pub nan: NanRecord,
     /// Units of the returned field.
     pub field_units: Units,
     /// Worker threads.
@@ -303,17 +306,23 @@ pub struct Output {
 }
 
 /// One registration, as `sinew register` does it once its files are read (see the module
-/// documentation). `observer` sees the solver's progress events. Runs on the current rayon
-/// pool (see [`with_threads`]). The field is formed whole on the fixed scan's native grid
-/// ([`sinew_solve::NativeField::to_field`]: 12 bytes per voxel).
+/// documentation). NaN or infinite voxels of the scans are refused, padded or replaced as
+/// `nan` says (`--nan`, [`sinew_solve::nan`]) before the checks. `observer` sees the solver's
+/// progress events. Runs on the current rayon pool (see [`with_threads`]). The field is
+/// formed whole on the fixed scan's native grid ([`sinew_solve::NativeField::to_field`]: 12
+/// bytes per voxel).
 pub fn register(
-    inputs: &Inputs,
+    mut inputs: Inputs,
+    nan: NanPolicy,
     params: &RegParams,
     scan: &ScanOptions,
     units: Units,
     observer: &mut dyn FnMut(Progress),
 ) -> Result<Output, ApiError> {
     let t_all = Instant::now();
+    let nan =
+        sinew_solve::nan::apply_to_pair(nan, &mut inputs).map_err(|e| input(format!("{}: {}", e.which, e.error)))?;
+    let inputs = &inputs;
     check_inputs(inputs)?;
     params.validate().map_err(|e| ApiError::Parameter(format!("parameters: {e}")))?;
     if !(scan.working_spacing_mm.is_finite() && scan.working_spacing_mm >= 0.0) {
@@ -340,6 +349,7 @@ pub fn register(
         caution: CAUTION,
         sinew_version: env!("CARGO_PKG_VERSION"),
         params: params.clone(),
+        nan,
         field_units: units,
         threads: rayon::current_num_threads(),
         scan: scan.clone(),
@@ -528,10 +538,14 @@ mod tests {
         moving.data[[1, 1, 1]] = f32::NAN;
         let inputs = Inputs { fixed: fixed.clone(), moving, fixed_labels: None, moving_labels: None, mask: None };
         let p = RegParams::preset("fast").unwrap();
-        let e = register(&inputs, &p, &ScanOptions::default(), Units::Voxel, &mut |_| {}).err().unwrap().to_string();
+        let e = register(inputs, NanPolicy::Refuse, &p, &ScanOptions::default(), Units::Voxel, &mut |_| {})
+            .err()
+            .unwrap()
+            .to_string();
         assert_eq!(
             e,
-            "moving: 1 voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value)"
+            "moving: 1 voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value) \
+             or choose what to do with them (pad or a value)"
         );
         let inputs = Inputs {
             fixed: fixed.clone(),
@@ -540,7 +554,10 @@ mod tests {
             moving_labels: None,
             mask: Some(LabelMap::filled(g, 0)),
         };
-        let e = register(&inputs, &p, &ScanOptions::default(), Units::Voxel, &mut |_| {}).err().unwrap().to_string();
+        let e = register(inputs, NanPolicy::Refuse, &p, &ScanOptions::default(), Units::Voxel, &mut |_| {})
+            .err()
+            .unwrap()
+            .to_string();
         assert_eq!(e, "mask: the mask is empty (no non-zero voxel)");
     }
 
@@ -558,7 +575,7 @@ mod tests {
             Inputs { fixed: fixed.clone(), moving: fixed, fixed_labels: None, moving_labels: None, mask: None };
         let bad = ScanOptions { working_spacing_mm: -1.0, ..ScanOptions::default() };
         let p = RegParams::preset("fast").unwrap();
-        let e = register(&inputs, &p, &bad, Units::Voxel, &mut |_| {}).err().unwrap().to_string();
+        let e = register(inputs, NanPolicy::Refuse, &p, &bad, Units::Voxel, &mut |_| {}).err().unwrap().to_string();
         assert_eq!(e, "working_spacing: -1: must be 0 or a positive number of mm");
     }
 

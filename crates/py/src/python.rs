@@ -60,8 +60,8 @@ fn json_value(text: &str, what: &str) -> Result<serde_json::Value, ApiError> {
 #[pyfunction]
 #[pyo3(signature = (fixed, fixed_affine, moving, moving_affine, fixed_labels=None, moving_labels=None,
     mask=None, preset="default", config_json=None, config_name="config", params_json="{}", units="voxel",
-    working_spacing=sinew_solve::scans::DEFAULT_WORKING_MM, initial="auto", antialias=true, threads=None,
-    progress=None))]
+    working_spacing=sinew_solve::scans::DEFAULT_WORKING_MM, initial="auto", antialias=true, nan="refuse",
+    threads=None, progress=None))]
 #[allow(clippy::too_many_arguments)]
 fn register<'py>(
     py: Python<'py>,
@@ -80,6 +80,7 @@ fn register<'py>(
     working_spacing: f64,
     initial: &str,
     antialias: bool,
+    nan: &str,
     threads: Option<usize>,
     progress: Option<Py<PyAny>>,
 ) -> PyResult<Bound<'py, PyDict>> {
@@ -91,6 +92,7 @@ fn register<'py>(
     let result = py.detach(|| {
         let units = Units::parse(units, "units")?;
         let scan = core::scan_options(working_spacing, initial, antialias)?;
+        let nan = core::NanPolicy::parse(nan).map_err(|e| ApiError::Input(format!("nan: {e}")))?;
         let config = config_json.map(|c| json_value(c, config_name)).transpose()?;
         let overrides = match json_value(params_json, "params")? {
             serde_json::Value::Object(m) => m,
@@ -138,7 +140,7 @@ fn register<'py>(
                     }
                 });
             };
-            let out = core::register(&inputs, &params, &scan, units, &mut observer)?;
+            let out = core::register(inputs, nan, &params, &scan, units, &mut observer)?;
             let field = core::field_to_channel_last(&out.field, units);
             let report = serde_json::to_string(&out.report).expect("the report serialises");
             Ok((field, out.warped.data, out.warped_labels.map(|l| l.data), out.jacdet.data, report))

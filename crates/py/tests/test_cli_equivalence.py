@@ -187,3 +187,33 @@ def test_moving_on_another_grid_matches_the_cli(sinew_bin, pair_files, tmp_path)
     reg2 = sinew.register(np.asanyarray(nib.load(p["fixed"]).dataobj), crop, affine=(nib.load(p["fixed"]).affine, stored),
                           preset="fast", threads=1)  # fmt: skip
     _bits_equal(reg2.field, reg.field)
+
+
+@pytest.mark.parametrize("policy", ["pad", -1024.0])
+def test_nan_voxels_are_treated_as_the_cli_treats_them(sinew_bin, pair_files, tmp_path, policy):
+    # A block of voxels outside the scanned volume, marked NaN as some exporters do (and one
+    # +inf): `nan=` must do what `--nan` does, bit for bit, and record the same counts.
+    p = pair_files
+    fixed = nib.load(p["fixed"])
+    data = np.asanyarray(fixed.dataobj).astype(np.float32)
+    data[:6, :, :] = np.nan
+    data[10, 10, 10] = np.inf
+    bad = tmp_path / "fixed_nan.nii.gz"
+    nib.save(nib.Nifti1Image(data, fixed.affine), bad)
+    out = tmp_path / "cli"
+    run_cli(sinew_bin, "register", "-f", str(bad), "-m", str(p["moving"]), "-o", str(out), "--npy",
+            "--no-qc", "-q", "-j", "1", "--preset", "fast", "--nan", str(policy))  # fmt: skip
+    reg = sinew.register(nib.load(bad), nib.load(p["moving"]), preset="fast", threads=1, nan=policy)
+    _bits_equal(reg.field, np.load(out / "field.npy"))
+    report = json.loads((out / "report.json").read_text())
+    assert reg.report["nan"] == report["nan"]
+    # The count is the number of non-finite voxels numpy sees in the file (6 planes + 1).
+    assert reg.report["nan"]["fixed_voxels"] == int(np.count_nonzero(~np.isfinite(data)))
+    assert reg.report["nan"]["moving_voxels"] == 0
+    assert np.isfinite(reg.warped).all() and np.isfinite(reg.field).all()
+    # Refused by default, with the CLI's one-line reason.
+    with pytest.raises(ValueError, match=r"fixed: \d+ voxels are NaN or infinite") as e:
+        sinew.register(nib.load(bad), nib.load(p["moving"]), preset="fast", threads=1)
+    assert "\n" not in str(e.value)
+    with pytest.raises(ValueError, match="nan: zero: expected refuse, pad or a finite number"):
+        sinew.register(nib.load(bad), nib.load(p["moving"]), preset="fast", threads=1, nan="zero")

@@ -15,6 +15,7 @@ pub mod fold;
 pub mod frames;
 pub mod kernel;
 pub mod lbfgs;
+pub mod nan;
 pub mod native;
 pub mod param;
 mod params;

@@ -19,42 +19,13 @@ pub struct Inputs {
     paths: Vec<(&'static str, PathBuf)>,
 }
 
-/// What to do with NaN or infinite voxels of a scan (`--nan`).
-#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
-#[serde(rename_all = "lowercase")]
-pub enum NanPolicy {
-    /// Refuse the scan (the default).
-    Refuse,
-    /// Padding: replaced by the scan's finite minimum; in the fixed scan also left out of the
-    /// data term.
-    Pad,
-    /// Replaced by this value.
-    Value(f32),
-}
+/// What to do with NaN or infinite voxels (`--nan`), and its record in the report: shared
+/// with the Python module ([`sinew_solve::nan`]).
+pub use sinew_solve::nan::{NanPolicy, NanRecord};
 
-impl NanPolicy {
-    /// Parses `refuse`, `pad` or a number.
-    pub fn parse(s: &str) -> anyhow::Result<NanPolicy> {
-        match s.trim().to_ascii_lowercase().as_str() {
-            "refuse" => Ok(NanPolicy::Refuse),
-            "pad" => Ok(NanPolicy::Pad),
-            t => match t.parse::<f32>() {
-                Ok(v) if v.is_finite() => Ok(NanPolicy::Value(v)),
-                _ => bail!("--nan {s}: expected refuse, pad or a finite number"),
-            },
-        }
-    }
-}
-
-/// The NaN policy used and how many voxels it touched, for the report.
-#[derive(Clone, Copy, Debug, Serialize)]
-pub struct NanRecord {
-    /// The policy.
-    pub policy: NanPolicy,
-    /// Non-finite voxels replaced in the fixed scan.
-    pub fixed_voxels: usize,
-    /// Non-finite voxels replaced in the moving scan.
-    pub moving_voxels: usize,
+/// Parses `--nan`: `refuse`, `pad` or a finite number.
+pub fn parse_nan(s: &str) -> anyhow::Result<NanPolicy> {
+    NanPolicy::parse(s).map_err(|e| anyhow::anyhow!("--nan {e}"))
 }
 
 /// One input file in a report.
@@ -99,14 +70,9 @@ impl Inputs {
         let fixed_labels_map = fixed_labels.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
         let moving_labels_map = moving_labels.map(|p| read_labels_on(p, &moving_img, moving)).transpose()?;
         let mut mask_map = mask.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
-        if let (NanPolicy::Pad, Some(bad)) = (nan, &fixed_bad) {
-            let m = mask_map.get_or_insert_with(|| LabelMap::filled(fixed_img.grid.clone(), 1));
-            m.as_slice_mut().iter_mut().zip(bad).filter(|(_, &b)| b).for_each(|(v, _)| *v = 0);
-            if m.as_slice().iter().all(|&v| v == 0) {
-                bail!("{}: no finite voxel is left for the data term", fixed.display());
-            }
-        }
-        let count = |b: &Option<Vec<bool>>| b.as_ref().map_or(0, |b| b.iter().filter(|&&x| x).count());
+        sinew_solve::nan::pad_fixed_mask(nan, fixed_bad.as_deref(), &mut mask_map, &fixed_img)
+            .map_err(|e| anyhow::anyhow!("{}: {e}", fixed.display()))?;
+        let count = sinew_solve::nan::count;
         let nan_record = NanRecord { policy: nan, fixed_voxels: count(&fixed_bad), moving_voxels: count(&moving_bad) };
         if let Some(m) = &mask_map {
             if m.as_slice().iter().all(|&v| v == 0) {
@@ -161,40 +127,26 @@ pub fn read_image_nan(path: &Path, nan: NanPolicy) -> anyhow::Result<(Image, Opt
         return Ok((read_finite_image(path)?, None));
     }
     let mut img = sinew_io::read_image(path)?;
-    let Some((lo, hi)) = img.finite_range() else {
-        bail!("{}: no voxel holds a finite value", path.display());
-    };
-    if lo == hi {
-        bail!("{}: the image is constant ({lo}); nothing to register", path.display());
-    }
-    if img.count_non_finite() == 0 {
-        return Ok((img, None));
-    }
-    let value = match nan {
-        NanPolicy::Value(v) => v,
-        _ => lo,
-    };
-    let bad: Vec<bool> = img.as_slice().iter().map(|v| !v.is_finite()).collect();
-    img.as_slice_mut().iter_mut().filter(|v| !v.is_finite()).for_each(|v| *v = value);
-    Ok((img, Some(bad)))
+    let bad = nan.apply(&mut img).map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?;
+    check_not_constant(&img, path)?;
+    Ok((img, bad))
 }
 
-/// Reads an image and rejects NaN or infinite voxels.
-pub fn read_finite_image(path: &Path) -> anyhow::Result<Image> {
-    let img = sinew_io::read_image(path)?;
-    let bad = img.count_non_finite();
-    if bad > 0 {
-        bail!(
-            "{}: {} voxels are NaN or infinite; clean the scan first (e.g. replace them by the background value)",
-            path.display(),
-            bad
-        );
-    }
+/// A constant scan holds nothing to register.
+fn check_not_constant(img: &Image, path: &Path) -> anyhow::Result<()> {
     if let Some((lo, hi)) = img.finite_range() {
         if lo == hi {
             bail!("{}: the image is constant ({lo}); nothing to register", path.display());
         }
     }
+    Ok(())
+}
+
+/// Reads an image and rejects NaN or infinite voxels.
+pub fn read_finite_image(path: &Path) -> anyhow::Result<Image> {
+    let mut img = sinew_io::read_image(path)?;
+    NanPolicy::Refuse.apply(&mut img).map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?;
+    check_not_constant(&img, path)?;
     Ok(img)
 }
 

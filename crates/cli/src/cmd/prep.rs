@@ -465,7 +465,7 @@ fn remove_leftovers(out: &Path) {
 
 fn run_inner(args: &PrepArgs) -> Result<()> {
     let steps = effective_steps(args)?;
-    let nan = common::NanPolicy::parse(&args.nan)?;
+    let nan = common::parse_nan(&args.nan)?;
     let jobs = collect_jobs(&args.inputs, &args.labels)?;
     check_outputs(&jobs, &args.out, steps.mask)?;
 

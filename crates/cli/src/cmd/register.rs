@@ -245,7 +245,7 @@ impl ScanArgs {
 
     /// The NaN policy.
     pub fn nan_policy(&self) -> anyhow::Result<common::NanPolicy> {
-        common::NanPolicy::parse(&self.nan)
+        common::parse_nan(&self.nan)
     }
 }
 

@@ -317,6 +317,7 @@ def register(
     working_spacing: float = DEFAULT_WORKING_SPACING,
     initial: str = "auto",
     antialias: bool = True,
+    nan: Union[str, float] = "refuse",
     threads: Optional[int] = None,
     progress: Optional[ProgressCallback] = None,
     **params: Any,
@@ -353,6 +354,11 @@ def register(
             or ``"off"``.
         antialias: smooth a scan before bringing it to a coarser working grid
             (``False`` = ``--no-antialias``).
+        nan: what to do with NaN or infinite voxels (voxels outside the scanned volume), as
+            ``--nan``: ``"refuse"`` (default: a ``ValueError``), ``"pad"`` (replaced by the
+            scan's finite minimum; in the fixed scan also left out of the data term) or a
+            finite number (replaced by it). The choice and the counts are in the report's
+            ``nan`` entry.
         threads: worker threads (default: all cores), as ``-j`` on the command line.
         progress: called as ``progress(level, stage, iteration, iterations)`` while the work
             runs (``stage`` is "pyramid", "descriptors", "optimise" or "jacobian"; level 0 is
@@ -403,6 +409,8 @@ def register(
         raise ValueError(f"working_spacing: must be a number of mm, got {working_spacing!r}")
     if not isinstance(antialias, (bool, np.bool_)):
         raise ValueError(f"antialias: must be True or False, got {antialias!r}")
+    if isinstance(nan, bool) or not isinstance(nan, (str, int, float, np.integer, np.floating)):
+        raise ValueError(f'nan: expected "refuse", "pad" or a finite number, got {nan!r}')
     native = _sinew.register(
         f_data,
         f_aff,
@@ -418,6 +426,7 @@ def register(
         units=units,
         working_spacing=float(working_spacing),
         initial=str(initial),
+        nan=nan if isinstance(nan, str) else repr(float(nan)),
         antialias=bool(antialias),
         threads=_threads(threads),
         progress=progress,

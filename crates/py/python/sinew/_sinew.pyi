@@ -29,6 +29,7 @@ def register(
     working_spacing: float = 2.0,
     initial: str = "auto",
     antialias: bool = True,
+    nan: str = "refuse",
     threads: Optional[int] = None,
     progress: Optional[Callable[[int, str, int, int], Any]] = None,
 ) -> Dict[str, Any]: ...
