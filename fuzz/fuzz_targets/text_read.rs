@@ -1,5 +1,5 @@
 //! libFuzzer target: arbitrary bytes through the cohort's text readers (`scores.csv` tables,
-//! manifests in TOML and CSV, pair lists); see `sinew_fuzz::check_text`.
+//! manifests in TOML and CSV, pair lists, landmarks); see `sinew_fuzz::check_text`.
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;

@@ -1,13 +1,13 @@
 //! What must hold when the cohort's text readers are given arbitrary bytes.
 //!
-//! The same bytes go through the `scores.csv` reader, the manifest reader (as TOML and as CSV)
-//! and the pair-list reader. No reader may panic; every error must be one line naming the file
+//! The same bytes go through the `scores.csv` reader, the manifest reader (as TOML and as CSV),
+//! the pair-list reader and the landmark reader. No reader may panic; every error must be one line naming the file
 //! (printed as the command line prints it: the error and its sources joined by ": "); and a
 //! table that is accepted must come back unchanged when written and read again.
 
 use std::path::Path;
 
-use sinew_cohort::{manifest, table};
+use sinew_cohort::{manifest, parse_landmarks, table};
 
 /// The error as `sinew` prints it: the message and each source, joined by ": ".
 fn printed(e: &dyn std::error::Error) -> String {
@@ -49,5 +49,8 @@ pub fn check_text(data: &[u8]) {
     }
     if let Err(e) = manifest::parse_pair_list(text, Path::new("fuzz-pairs.csv")) {
         one_line_naming(&e, "fuzz-pairs.csv");
+    }
+    if let Err(e) = parse_landmarks(text, Path::new("fuzz-landmarks.csv")) {
+        one_line_naming(&e, "fuzz-landmarks.csv");
     }
 }

@@ -171,26 +171,44 @@ pub fn load_field(path: &Path, fixed_grid: &Grid, fmt: &FieldFormat) -> Result<(
     Ok((field, note))
 }
 
-/// Reads landmarks: one point a line, the last three comma-separated values are x, y, z in
-/// world mm; blank lines and lines starting with `#` are skipped; a first line that does not
-/// parse is taken as a header.
+/// Reads landmarks from a CSV file (see [`parse_landmarks`]).
 pub fn read_landmarks(path: &Path) -> Result<Vec<WorldPoint>> {
     let text = std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))?;
+    parse_landmarks(&text, path)
+}
+
+/// Parses landmarks through the `csv` crate: one point a record, whose last three cells are
+/// x, y, z in world mm (earlier cells, e.g. a name, are ignored); cells are trimmed and may be
+/// quoted (RFC 4180: a quoted cell may hold commas, quotes and line breaks); blank lines and
+/// lines starting with `#` are skipped; a first record that does not parse is taken as a
+/// header. `path` only names the file in errors, which give its line.
+pub fn parse_landmarks(text: &str, path: &Path) -> Result<Vec<WorldPoint>> {
+    let mut rdr = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .comment(Some(b'#'))
+        .trim(csv::Trim::All)
+        .flexible(true)
+        .from_reader(text.as_bytes());
     let mut points = Vec::new();
     let mut first = true;
-    for (n, line) in text.lines().enumerate() {
-        let line = line.trim();
-        if line.is_empty() || line.starts_with('#') {
+    for r in rdr.records() {
+        let r = r.with_context(|| format!("{}: not a CSV table", path.display()))?;
+        let line = crate::manifest::record_line(text.as_bytes(), r.position(), Some(b'#'));
+        // Blank lines, and comments indented by white space (the reader's own comment rule
+        // needs the `#` in the first column).
+        if r.iter().all(str::is_empty) || r.get(0).is_some_and(|c| c.starts_with('#')) {
             continue;
         }
-        let cells: Vec<&str> = line.split(',').map(str::trim).collect();
-        let parsed: Option<Vec<f64>> = (cells.len() >= 3)
-            .then(|| cells[cells.len() - 3..].iter().map(|c| c.parse::<f64>().ok().filter(|v| v.is_finite())).collect())
+        let parsed: Option<Vec<f64>> = (r.len() >= 3)
+            .then(|| r.iter().skip(r.len() - 3).map(|c| c.parse::<f64>().ok().filter(|v| v.is_finite())).collect())
             .flatten();
         match parsed {
             Some(v) => points.push([v[0], v[1], v[2]]),
             None if first => {}
-            None => bail!("{}:{}: expected x,y,z in mm, found {line:?}", path.display(), n + 1),
+            None => {
+                let found = r.iter().collect::<Vec<_>>().join(",");
+                bail!("{}:{line}: expected x,y,z in mm, found {found:?}", path.display())
+            }
         }
         first = false;
     }
@@ -454,4 +472,60 @@ pub fn rows_of(r: &PairRecord, names: &std::collections::BTreeMap<u16, String>) 
             }
         })
         .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn printed(e: &crate::CohortError) -> String {
+        let mut s = e.to_string();
+        let mut source = std::error::Error::source(e);
+        while let Some(inner) = source {
+            s.push_str(": ");
+            s.push_str(&inner.to_string());
+            source = inner.source();
+        }
+        s
+    }
+
+    #[test]
+    fn landmarks_with_a_header_comments_and_quoted_names() {
+        // RFC 4180 (the csv crate's reading of it): a quoted cell may hold the delimiter, a
+        // doubled quote and a line break; the record still ends after its last cell.
+        let text = "name,x,y,z\n# a comment\n\n  # an indented comment\n\"left, \"\"upper\"\"\npole\", 1.5, -2, 3e1\nright,4,5,6\n7,8,9\n";
+        let p = parse_landmarks(text, Path::new("marks.csv")).unwrap();
+        assert_eq!(p, vec![[1.5, -2.0, 30.0], [4.0, 5.0, 6.0], [7.0, 8.0, 9.0]]);
+        // Without a header and with quoted numbers.
+        let p = parse_landmarks("\"1\",\"2\",\"3\"\n", Path::new("marks.csv")).unwrap();
+        assert_eq!(p, vec![[1.0, 2.0, 3.0]]);
+    }
+
+    #[test]
+    fn a_bad_landmark_row_is_a_one_line_error_naming_the_file_and_line() {
+        // The record of lines 3-4: a quoted name holding a line break, then a cell that is no
+        // number; the error gives the line the record starts on.
+        let text = "x,y,z\n1,2,3\n\"a\nb\",4,oops,6\n";
+        let e = printed(&parse_landmarks(text, Path::new("marks.csv")).unwrap_err());
+        assert_eq!(e, r#"marks.csv:3: expected x,y,z in mm, found "a\nb,4,oops,6""#);
+        // The line counts the blank and comment lines before the row (the csv crate's own
+        // record position does not: see `manifest::record_line`).
+        let bad_rows = [
+            ("1,2,3\n4,5\n", 2),
+            ("1,2,3\n\n4,5,inf\n", 3),
+            ("1,2,3\n4,NaN,6\n", 2),
+            ("1,2,3\n# note\n\n4,x,6\n", 4),
+            ("1,2,3\r\n\r\n4,5,-\r\n", 3),
+        ];
+        for (bad, line) in bad_rows {
+            let e = printed(&parse_landmarks(bad, Path::new("marks.csv")).unwrap_err());
+            assert!(e.starts_with(&format!("marks.csv:{line}: expected x,y,z in mm")) && !e.contains('\n'), "{e}");
+        }
+        for empty in ["", "x,y,z\n", "# only a comment\n"] {
+            let e = printed(&parse_landmarks(empty, Path::new("marks.csv")).unwrap_err());
+            assert_eq!(e, "marks.csv: no landmarks (expected lines of x,y,z in mm)");
+        }
+        let e = printed(&read_landmarks(Path::new("/nonexistent/marks.csv")).unwrap_err());
+        assert!(e.starts_with("/nonexistent/marks.csv: cannot read") && !e.contains('\n'), "{e}");
+    }
 }

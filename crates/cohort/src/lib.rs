@@ -24,8 +24,8 @@ pub mod table;
 
 pub use error::{CohortError, Context, Result, Wrap};
 pub use files::{
-    label_names, label_names_file, label_names_for, load_field, read_landmarks, score_files, sha256_file, write_json,
-    Direction, FieldFormat, FieldNote, PairFiles, PairRecord, PairResult,
+    label_names, label_names_file, label_names_for, load_field, parse_landmarks, read_landmarks, score_files,
+    sha256_file, write_json, Direction, FieldFormat, FieldNote, PairFiles, PairRecord, PairResult,
 };
 pub use manifest::{all_pairs, Cohort, NamedPair, Pair, Shard, Source, Subject};
 pub use table::{Row, BASELINE};

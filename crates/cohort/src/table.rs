@@ -135,7 +135,7 @@ pub fn parse_csv(path: &Path, bytes: &[u8]) -> Result<Vec<Row>> {
     let mut rows = Vec::new();
     for rec in records {
         let c = rec.with_context(|| format!("{}: not a CSV table", path.display()))?;
-        let line = c.position().map_or(0, |p| p.line());
+        let line = crate::manifest::record_line(bytes, c.position(), None);
         let at = || format!("{}:{line}", path.display());
         if c.len() != columns.len() {
             bail!("{}: {} cells, expected {}", at(), c.len(), columns.len());

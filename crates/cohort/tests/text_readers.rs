@@ -9,12 +9,13 @@ use rand::{Rng, SeedableRng};
 
 /// Valid inputs of every reader, the `text_read` fuzz target's seed corpus
 /// (`fuzz/corpus/text_read/`): a scores table (quoted cells with a comma, a quote and a line
-/// break), TOML and CSV manifests, a pair list.
-const SEEDS: [&str; 4] = [
+/// break), TOML and CSV manifests, a pair list, landmarks (a quoted name with a comma).
+const SEEDS: [&str; 5] = [
     include_str!("../../../fuzz/corpus/text_read/scores.csv"),
     include_str!("../../../fuzz/corpus/text_read/manifest.toml"),
     include_str!("../../../fuzz/corpus/text_read/manifest.csv"),
     include_str!("../../../fuzz/corpus/text_read/pairs.csv"),
+    include_str!("../../../fuzz/corpus/text_read/landmarks.csv"),
 ];
 
 #[test]
