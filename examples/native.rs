@@ -25,7 +25,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use sinew_grid::{resample, Affine, Border, Grid, Image};
-use sinew_testkit::{load_average, median, release_binary, timed, KnownWarp};
+use sinew_testkit::{endpoint_errors_where, load_average, mean, median, release_binary, timed, KnownWarp};
 
 /// The scan resampled to `shape` over its own field of view, then labelled with `spacing`
 /// (directions kept): a body scaled to that spacing.
@@ -75,21 +75,16 @@ fn epe(dir: &Path, name: &str, out: &Path) -> f64 {
     let (u, _) = sinew_io::read_field(&field, opts).unwrap();
     let fixed = sinew_io::read_image(&dir.join(format!("{name}_fixed.nii.gz"))).unwrap();
     let lin = u.grid.affine().linear();
-    let [_, ny, nz] = u.grid.shape();
-    let (mut s, mut n) = (0.0f64, 0usize);
-    for idx in (0..u.grid.len()).step_by(4) {
-        let k = (idx % nz) as f64;
-        let tk = k + truth.component(2)[idx] as f64;
-        if fixed.as_slice()[idx] <= -500.0 || tk < 0.5 || tk > nz as f64 - 1.5 {
-            continue;
+    let nz = u.grid.shape()[2];
+    let errs = endpoint_errors_where(&u.grid, |idx, x| {
+        let tk = x[2] + truth.component(2)[idx] as f64;
+        if idx % 4 != 0 || fixed.as_slice()[idx] <= -500.0 || tk < 0.5 || tk > nz as f64 - 1.5 {
+            return None;
         }
-        let _ = ny;
         let d: [f64; 3] = std::array::from_fn(|c| (u.component(c)[idx] - truth.component(c)[idx]) as f64);
-        let w: [f64; 3] = std::array::from_fn(|r| (0..3).map(|c| lin[r][c] * d[c]).sum());
-        s += (w[0] * w[0] + w[1] * w[1] + w[2] * w[2]).sqrt();
-        n += 1;
-    }
-    s / n as f64
+        Some(std::array::from_fn(|r| (0..3).map(|c| lin[r][c] * d[c]).sum()))
+    });
+    mean(&errs)
 }
 
 fn main() {

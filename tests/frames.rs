@@ -17,6 +17,7 @@ use std::path::PathBuf;
 
 use sinew_grid::{resample, Affine, Border, Field, Grid, Image};
 use sinew_solve::{register_scans, RegParams, ScanOptions};
+use sinew_testkit::{endpoint_errors_where, mean};
 
 fn real_ct(name: &str) -> Image {
     let dir = std::env::var("SINEW_REAL_CT").unwrap_or_else(|_| "/work/shared/data/real-ct".into());
@@ -50,23 +51,21 @@ fn other_frame(img: &Image, shift: [f64; 3]) -> Image {
 }
 
 /// Mean endpoint error (mm): `|G_f·(x + u(x)) − (G_t·(x + u*(x)) + shift)|` over fixed body
-/// voxels whose true endpoint lies inside the moving slices (`G_t` = the truth's frame).
+/// voxels whose true endpoint lies inside the moving slices (`G_t` = the truth's frame), and
+/// the number of those voxels.
 fn endpoint_error(u: &Field, truth: &Field, fixed: &Image, shift: [f64; 3]) -> (f64, usize) {
     let g = &u.grid;
-    let [_, ny, nz] = g.shape();
-    let (mut sum, mut n) = (0.0f64, 0usize);
-    for (idx, &v) in fixed.as_slice().iter().enumerate() {
-        let x = [(idx / (ny * nz)) as f64, ((idx / nz) % ny) as f64, (idx % nz) as f64];
-        let ut: [f64; 3] = std::array::from_fn(|d| x[d] + truth.component(d)[idx] as f64);
-        if v <= -500.0 || ut[2] < 0.5 || ut[2] > nz as f64 - 1.5 {
-            continue;
+    let nz = g.shape()[2];
+    let errs = endpoint_errors_where(g, |n, x| {
+        let ut: [f64; 3] = std::array::from_fn(|d| x[d] + truth.component(d)[n] as f64);
+        if fixed.as_slice()[n] <= -500.0 || ut[2] < 0.5 || ut[2] > nz as f64 - 1.5 {
+            return None;
         }
-        let got = g.voxel_to_world(std::array::from_fn(|d| x[d] + u.component(d)[idx] as f64));
+        let got = g.voxel_to_world(std::array::from_fn(|d| x[d] + u.component(d)[n] as f64));
         let want = truth.grid.voxel_to_world(ut);
-        sum += (0..3).map(|d| (got[d] - want[d] - shift[d]).powi(2)).sum::<f64>().sqrt();
-        n += 1;
-    }
-    (sum / n as f64, n)
+        Some(std::array::from_fn(|d| got[d] - want[d] - shift[d]))
+    });
+    (mean(&errs), errs.len())
 }
 
 fn run(fixed: &Image, moving: &Image) -> sinew_solve::ScanRegistration {

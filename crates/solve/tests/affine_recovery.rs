@@ -7,6 +7,7 @@ use sinew_grid::{Affine, Image};
 use sinew_phantom::{generate, PhantomParams};
 use sinew_solve::affine::{apply_to_image, estimate, AffineParams};
 use sinew_solve::AffineMode;
+use sinew_testkit::{endpoint_errors_where, mean};
 
 /// `T(t) · R_z(γ)·R_y(β)·R_x(α) · S(s)` about the world origin (the phantom's centre).
 fn known_map(deg: [f64; 3], scale: [f64; 3], t: [f64; 3]) -> Affine {
@@ -20,22 +21,18 @@ fn known_map(deg: [f64; 3], scale: [f64; 3], t: [f64; 3]) -> Affine {
         .compose(&lin(rz).compose(&lin(ry).compose(&lin(rx).compose(&lin(s)))))
 }
 
+/// Mean and largest distance (mm) between the estimated and the true map's images of the
+/// labelled voxels' centres.
 fn body_error(est: &Affine, truth: &Affine, labels: &sinew_grid::LabelMap) -> (f64, f64) {
     let g = &labels.grid;
-    let [_, ny, nz] = g.shape();
-    let (mut sum, mut max, mut count) = (0.0, 0.0f64, 0usize);
-    for (n, &l) in labels.as_slice().iter().enumerate() {
-        if l == 0 {
-            continue;
-        }
-        let x = g.voxel_to_world([(n / (ny * nz)) as f64, ((n / nz) % ny) as f64, (n % nz) as f64]);
-        let (p, q) = (est.apply(x), truth.apply(x));
-        let e = (0..3).map(|d| (p[d] - q[d]).powi(2)).sum::<f64>().sqrt();
-        sum += e;
-        max = max.max(e);
-        count += 1;
-    }
-    (sum / count as f64, max)
+    let errs = endpoint_errors_where(g, |n, x| {
+        (labels.as_slice()[n] != 0).then(|| {
+            let w = g.voxel_to_world(x);
+            let (p, q) = (est.apply(w), truth.apply(w));
+            [p[0] - q[0], p[1] - q[1], p[2] - q[2]]
+        })
+    });
+    (mean(&errs), errs.iter().copied().fold(0.0, f64::max))
 }
 
 struct Case {
@@ -49,24 +46,19 @@ struct Case {
 /// true moving point lies at least `border` voxels inside the grid (`-∞`: every one).
 fn field_error(field: &sinew_grid::Field, truth: &Affine, labels: &sinew_grid::LabelMap, border: f64) -> f64 {
     let g = &labels.grid;
-    let [_, ny, nz] = g.shape();
-    let (mut sum, mut count) = (0.0, 0usize);
-    for (n, &l) in labels.as_slice().iter().enumerate() {
-        if l == 0 {
-            continue;
+    let errs = endpoint_errors_where(g, |n, x| {
+        if labels.as_slice()[n] == 0 {
+            return None;
         }
-        let x = [(n / (ny * nz)) as f64, ((n / nz) % ny) as f64, (n % nz) as f64];
-        let u = [0, 1, 2].map(|d| field.component(d)[n] as f64);
-        let p = g.voxel_to_world([x[0] + u[0], x[1] + u[1], x[2] + u[2]]);
         let q = truth.apply(g.voxel_to_world(x));
         let qv = g.world_to_voxel(q);
         if (0..3).any(|d| qv[d] < border || qv[d] > g.shape()[d] as f64 - 1.0 - border) {
-            continue;
+            return None;
         }
-        sum += (0..3).map(|d| (p[d] - q[d]).powi(2)).sum::<f64>().sqrt();
-        count += 1;
-    }
-    sum / count as f64
+        let p = g.voxel_to_world(std::array::from_fn(|d| x[d] + field.component(d)[n] as f64));
+        Some([p[0] - q[0], p[1] - q[1], p[2] - q[2]])
+    });
+    mean(&errs)
 }
 
 fn case(scale: [f64; 3]) -> Case {

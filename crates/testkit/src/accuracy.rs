@@ -4,7 +4,7 @@
 //! field `u*` (`fixed(x) = moving(x + u*(x))`), so a registration should find `u ≈ u*`. The
 //! construction is the usual synthetic-deformation protocol (common practice).
 
-use sinew_grid::{Border, Field, Image, LabelMap};
+use sinew_grid::{Border, Field, Grid, Image, LabelMap};
 
 use crate::SplitMix64;
 
@@ -53,17 +53,33 @@ pub fn add_noise(img: &mut Image, sigma: f32, seed: u64) {
     }
 }
 
+/// The endpoint error in mm, `|d(x)|` (Euclidean norm), at every voxel `x` of `grid` (in
+/// standard order, `k` fastest) where `diff(n, x)` gives `d(x)`: the difference in mm between
+/// where a registration sends the voxel (index `n`, voxel coordinates `x`) and where it should
+/// go; `None` leaves the voxel out. Every endpoint-error figure of the tests, examples and
+/// benchmark is this one loop with its own `diff`.
+pub fn endpoint_errors_where(grid: &Grid, diff: impl Fn(usize, [f64; 3]) -> Option<[f64; 3]>) -> Vec<f64> {
+    let [_, ny, nz] = grid.shape();
+    (0..grid.len())
+        .filter_map(|n| diff(n, [(n / (ny * nz)) as f64, ((n / nz) % ny) as f64, (n % nz) as f64]))
+        .map(|d| d.iter().map(|v| v * v).sum::<f64>().sqrt())
+        .collect()
+}
+
 /// The endpoint error `|u(x) − u*(x)|` in mm at every voxel (standard layout), with the
 /// displacement components in voxels scaled by the grid's spacing along each axis:
-/// `√Σ_d ((u_d − u*_d)·spacing_d)²`.
+/// `√Σ_d ((u_d − u*_d)·spacing_d)²` ([`endpoint_errors_where`] of that difference).
 pub fn endpoint_errors(u: &Field, truth: &Field) -> Vec<f64> {
     let sp = u.grid.spacing();
-    (0..u.grid.len())
-        .map(|n| {
-            let e2: f64 = (0..3).map(|d| ((u.component(d)[n] - truth.component(d)[n]) as f64 * sp[d]).powi(2)).sum();
-            e2.sqrt()
-        })
-        .collect()
+    endpoint_errors_where(&u.grid, |n, _| {
+        Some(std::array::from_fn(|d| (u.component(d)[n] - truth.component(d)[n]) as f64 * sp[d]))
+    })
+}
+
+/// The arithmetic mean of `values`; panics when there are none.
+pub fn mean(values: &[f64]) -> f64 {
+    assert!(!values.is_empty(), "no values to average");
+    values.iter().sum::<f64>() / values.len() as f64
 }
 
 /// Mean and 95th percentile (the value at rank `⌊0.95·n⌋` of the `n` sorted errors) of the
@@ -73,7 +89,7 @@ pub fn endpoint_error(u: &Field, truth: &Field, inside: &LabelMap) -> (f64, f64)
     let all = endpoint_errors(u, truth);
     let mut errs: Vec<f64> = inside.as_slice().iter().zip(all).filter(|(&l, _)| l != 0).map(|(_, e)| e).collect();
     assert!(!errs.is_empty(), "the mask is empty");
-    let mean = errs.iter().sum::<f64>() / errs.len() as f64;
+    let mean = mean(&errs);
     errs.sort_by(|a, b| a.partial_cmp(b).unwrap());
     (mean, errs[((errs.len() as f64 * 0.95) as usize).min(errs.len() - 1)])
 }

@@ -13,7 +13,7 @@ mod files;
 mod geometry;
 mod rng;
 
-pub use accuracy::{add_noise, endpoint_error, endpoint_errors, KnownWarp};
+pub use accuracy::{add_noise, endpoint_error, endpoint_errors, endpoint_errors_where, mean, KnownWarp};
 pub use bench::{load_average, median, release_binary, thread_pool_from_args, time_runs, timed};
 pub use cli::{ok, p, run_ok, text, Sinew, QUICK};
 pub use files::{listing, table_without_times, tempdir};
