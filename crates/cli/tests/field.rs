@@ -80,7 +80,9 @@ fn invert_then_compose_gives_the_identity_and_units_round_trip() {
         .success());
     let (back, units) = sinew_io::read_field(&vox, Default::default()).unwrap();
     assert_eq!(units, FieldUnits::Voxel);
-    assert!(back.data.iter().zip(u.data.iter()).all(|(a, b)| (a - b).abs() < 1e-5));
+    for (&a, &b) in back.data.iter().zip(u.data.iter()) {
+        approx::assert_abs_diff_eq!(a, b, epsilon = 1e-5);
+    }
     // Refuses to overwrite its input.
     assert!(!SINEW.cmd().args(["field", "invert"]).arg(&src).arg("-o").arg(&src).status().unwrap().success());
 }

@@ -76,7 +76,7 @@ fn sha256(p: &Path) -> String {
 fn same_world_voxel(out: &sinew_grid::Grid, src: &sinew_grid::Grid, q: [usize; 3]) -> Option<[usize; 3]> {
     let p = src.world_to_voxel(out.voxel_to_world(q.map(|v| v as f64)));
     let r = p.map(f64::round);
-    assert!((0..3).all(|d| (p[d] - r[d]).abs() < 1e-3), "voxel {q:?} falls between source voxels: {p:?}");
+    assert!(approx::abs_diff_eq!(p[..], r[..], epsilon = 1e-3), "voxel {q:?} falls between source voxels: {p:?}");
     let n = src.shape();
     (0..3).all(|d| r[d] >= 0.0 && r[d] < n[d] as f64).then(|| r.map(|v| v as usize))
 }
@@ -187,7 +187,7 @@ fn flags_alone_keep_the_field_of_view_and_override_a_recipe() {
         v
     };
     for (x, y) in corners("corners_in").iter().zip(&corners("corners_out")) {
-        assert!((0..3).all(|d| (x[d] - y[d]).abs() < 1e-4), "{x:?} vs {y:?}");
+        approx::assert_abs_diff_eq!(x[..], y[..], epsilon = 1e-4);
     }
     let range: Vec<f64> = serde_json::from_value(c["range_out"].clone()).unwrap();
     assert!((c["max_abs_diff"].as_f64().unwrap()) < 1e-4 * (range[1] - range[0]), "{c}");

@@ -105,7 +105,10 @@ fn every_field_form_recovers_a_known_shift() {
         assert_eq!(l["surface"]["hd95_mm"].as_f64(), Some(0.0), "{what}");
         // A constant field has det J = 1 (exact): no folding, SDlogJ 0.
         assert_eq!(v["score"]["jacobian"]["folded_voxels"], 0, "{what}");
-        assert!(v["score"]["jacobian"]["sd_log_j"].as_f64().unwrap().abs() < 1e-6, "{what}");
+        assert!(
+            approx::abs_diff_eq!(v["score"]["jacobian"]["sd_log_j"].as_f64().unwrap(), 0.0, epsilon = 1e-6),
+            "{what}"
+        );
         // Landmarks: exact mapping after, 4 mm apart before.
         assert!(v["landmarks"]["max_mm"].as_f64().unwrap() < 1e-5, "{what}");
         assert!(

@@ -409,7 +409,9 @@ mod tests {
         let rows: Vec<Row> = [0.2, 0.4, 0.9].iter().enumerate().map(|(p, &d)| row("sinew", p, 1, Some(d))).collect();
         let s = summarise(&rows, 30.0);
         let d = s[0].labels[0].dice.clone().unwrap();
-        assert!((d.mean - 0.5).abs() < 1e-12 && (d.median - 0.4).abs() < 1e-12 && (d.robust - 0.32).abs() < 1e-12);
+        approx::assert_abs_diff_eq!(d.mean, 0.5, epsilon = 1e-12);
+        approx::assert_abs_diff_eq!(d.median, 0.4, epsilon = 1e-12);
+        approx::assert_abs_diff_eq!(d.robust, 0.32, epsilon = 1e-12);
         approx::assert_abs_diff_eq!(d.std.unwrap(), 0.13f64.sqrt(), epsilon = 1e-12);
         assert_eq!(s[0].labels.len(), 2);
         assert!(markdown(&s).starts_with("> **Caution.**"));

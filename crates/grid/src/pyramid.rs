@@ -57,6 +57,8 @@ mod tests {
         // level 1 is [2, 2, 4] mm: the 4 mm axis is now thick and is kept
         assert_eq!(p[2].grid.shape(), [4, 4, 8]);
         assert_eq!(p[2].grid.spacing(), [4.0, 4.0, 4.0]);
-        assert!(p[2].data.iter().all(|&v| (v - 2.0).abs() < 1e-5));
+        for &v in p[2].data.iter() {
+            approx::assert_abs_diff_eq!(v, 2.0, epsilon = 1e-5);
+        }
     }
 }

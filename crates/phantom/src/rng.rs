@@ -94,7 +94,7 @@ mod tests {
             s4 += z * z * z * z;
         }
         let n = n as f64;
-        assert!((s1 / n).abs() < 0.012, "mean {}", s1 / n);
+        assert!(approx::abs_diff_eq!(s1 / n, 0.0, epsilon = 0.012), "mean {}", s1 / n);
         assert!(approx::abs_diff_eq!(s2 / n, 1.0, epsilon = 0.015), "variance {}", s2 / n);
         assert!(approx::abs_diff_eq!(s4 / n, 3.0, epsilon = 0.1), "fourth moment {}", s4 / n);
     }

@@ -208,7 +208,8 @@ fn small_grid_covers_the_default_field_of_view() {
         assert_eq!(fov_d, fov_s);
         let corner_d = gd.voxel_to_world([-0.5; 3])[axis];
         let corner_s = gs.voxel_to_world([-0.5; 3])[axis];
-        assert!((corner_d + fov_d / 2.0).abs() < 1e-9 && (corner_s + fov_s / 2.0).abs() < 1e-9);
+        approx::assert_abs_diff_eq!(corner_d, -fov_d / 2.0, epsilon = 1e-9);
+        approx::assert_abs_diff_eq!(corner_s, -fov_s / 2.0, epsilon = 1e-9);
     }
     assert_eq!(gd.orientation(), "RAS");
     assert_eq!([d.shape, s.shape], [[144, 112, 192], [72, 56, 96]]);

@@ -113,10 +113,10 @@ mod tests {
         // n' = round(10·3/2) = 15, round(9·2/2) = 9, round(31·1/2) = round(15.5) = 16
         assert_eq!(h.shape(), [15, 9, 16]);
         let sp = h.spacing();
-        assert!(sp.iter().all(|s| (s - 2.0).abs() < 1e-12), "{sp:?}");
+        approx::assert_abs_diff_eq!(sp[..], [2.0; 3][..], epsilon = 1e-12);
         let centre = |g: &Grid| g.voxel_to_world(g.shape().map(|n| (n as f64 - 1.0) / 2.0));
         let (c0, c1) = (centre(&g), centre(&h));
-        assert!((0..3).all(|d| (c0[d] - c1[d]).abs() < 1e-12), "{c0:?} {c1:?}");
+        approx::assert_abs_diff_eq!(c0[..], c1[..], epsilon = 1e-12);
         assert_eq!(h.orientation(), g.orientation());
         assert!(grid_with_spacing(&g, [0.0, 1.0, 1.0]).is_err());
     }

@@ -179,12 +179,12 @@ fn resampling_agrees_with_scipy_and_keeps_the_field_of_view() {
         let (a, b) = (sorted_corners(&ci["corners_in"]), sorted_corners(&ci["corners_out"]));
         if same_fov {
             for (x, y) in a.iter().zip(&b) {
-                assert!((0..3).all(|d| (x[d] - y[d]).abs() < 1e-4), "{name}: corner {x:?} vs {y:?}");
+                assert!(approx::abs_diff_eq!(x[..], y[..], epsilon = 1e-4), "{name}: corner {x:?} vs {y:?}");
             }
         }
         let centre = |c: &[[f64; 3]]| [0, 1, 2].map(|d| c.iter().map(|p| p[d]).sum::<f64>() / 8.0);
         let (ca, cb) = (centre(&a), centre(&b));
-        assert!((0..3).all(|d| (ca[d] - cb[d]).abs() < 1e-4), "{name}: centre {ca:?} vs {cb:?}");
+        assert!(approx::abs_diff_eq!(ca[..], cb[..], epsilon = 1e-4), "{name}: centre {ca:?} vs {cb:?}");
         if name == "orient" {
             // Values are copied exactly (see the nibabel test); the scipy side interpolates at
             // positions off by the float32 rounding of the stored affines.

@@ -164,7 +164,7 @@ mod tests {
             let fast = squared_distance_transform(f.view(), h);
             let slow = brute(&f, h);
             for (a, b) in fast.iter().zip(slow.iter()) {
-                assert!(a == b || (a - b).abs() <= 1e-9 * b.max(1.0), "{a} vs {b}");
+                approx::assert_relative_eq!(*a, *b, epsilon = 1e-9, max_relative = 1e-9);
             }
         }
     }

@@ -94,7 +94,9 @@ mod tests {
         let e = landmark_errors(&f, &x, &y).unwrap();
         assert!(e.per_landmark_mm[0] < 1e-9);
         approx::assert_abs_diff_eq!(e.per_landmark_mm[1], 5.0, epsilon = 1e-9); // |(−3, 0, −4)| = 5
-        assert!((e.mean_mm - 2.5).abs() < 1e-9 && (e.max_mm - 5.0).abs() < 1e-9 && (e.median_mm - 2.5).abs() < 1e-9);
+        approx::assert_abs_diff_eq!(e.mean_mm, 2.5, epsilon = 1e-9);
+        approx::assert_abs_diff_eq!(e.max_mm, 5.0, epsilon = 1e-9);
+        approx::assert_abs_diff_eq!(e.median_mm, 2.5, epsilon = 1e-9);
         approx::assert_abs_diff_eq!(
             e.mean_before_mm,
             (40f64.sqrt() + 3f64.hypot(2.0).hypot(10.0)) / 2.0,

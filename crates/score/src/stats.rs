@@ -114,7 +114,8 @@ mod tests {
         let s = Summary::of(&x).unwrap();
         assert_eq!(s.n, 8);
         approx::assert_abs_diff_eq!(s.mean, 3.875, epsilon = 1e-15);
-        assert!((s.robust - 2.1).abs() < 1e-12 && s.robust_percentile == 30.0);
+        approx::assert_abs_diff_eq!(s.robust, 2.1, epsilon = 1e-12);
+        assert_eq!(s.robust_percentile, 30.0);
         // np.percentile(x, 10): h = 0.7 → 1 + 0.7·(1 − 1) = 1; np.percentile(x, 90): h = 6.3 →
         // 6 + 0.3·(9 − 6) = 6.9.
         assert_eq!(Summary::with_percentile(&x, 10.0).unwrap().robust, 1.0);

@@ -414,7 +414,8 @@ mod tests {
         assert!(b.rotation_deg < 1.0, "{}", b.rotation_deg);
         // Same frame: nothing to do.
         let (c, _, _) = initial_alignment(&f, &f, InitialMode::Auto);
-        assert!(!c.applied && (c.overlap_identity - 1.0).abs() < 1e-12);
+        assert!(!c.applied);
+        approx::assert_abs_diff_eq!(c.overlap_identity, 1.0, epsilon = 1e-12);
     }
 
     #[test]

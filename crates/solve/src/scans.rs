@@ -447,7 +447,8 @@ mod tests {
         let w = working_grid(&g, 2.0);
         assert_eq!(w.shape(), [146, 146, 48]);
         let sp = w.spacing();
-        assert!((sp[0] - 0.57 * 512.0 / 146.0).abs() < 1e-9 && sp[2] == 5.0);
+        approx::assert_abs_diff_eq!(sp[0], 0.57 * 512.0 / 146.0, epsilon = 1e-9);
+        assert_eq!(sp[2], 5.0);
         // A 2 mm grid is its own working grid (the demo's case).
         let d = Grid::axis_aligned([144, 112, 192], [2.0; 3], [1.0, 2.0, 3.0]);
         assert_eq!(working_grid(&d, 2.0), d);

@@ -94,6 +94,8 @@ mod tests {
         let mut out = Field::zeros(g.clone());
         let mut s = Field::zeros(g);
         exp_into(&v, &mut out, &mut s);
-        assert!(out.data.iter().all(|&x| (x - 0.7).abs() < 1e-5));
+        for &x in out.data.iter() {
+            approx::assert_abs_diff_eq!(x, 0.7, epsilon = 1e-5);
+        }
     }
 }

@@ -333,7 +333,9 @@ mod tests {
     fn ticks_are_round_and_inside() {
         let t = ticks(0.0, 1.0);
         assert_eq!(t.len(), 6);
-        assert!(t.iter().enumerate().all(|(k, v)| (v - 0.2 * k as f64).abs() < 1e-12));
+        for (k, &v) in t.iter().enumerate() {
+            approx::assert_abs_diff_eq!(v, 0.2 * k as f64, epsilon = 1e-12);
+        }
         let t = ticks(0.61, 0.74);
         assert!(t.len() >= 3 && t.iter().all(|v| (0.61..=0.74).contains(v)));
     }
