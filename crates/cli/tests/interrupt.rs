@@ -137,6 +137,18 @@ fn assert_same_outputs(a: &Path, b: &Path) {
     }
 }
 
+/// Runs `command` (made for an output folder) into `tmp/a` uninterrupted, then into `tmp/b`
+/// six times killed at seeded points ([`kill_repeatedly`], seed `seed`) and once to the end:
+/// at least four of the six runs must be interrupted, and `b` must end as `a`
+/// ([`assert_same_outputs`]).
+fn ends_like_an_uninterrupted_run(tmp: &Path, command: impl Fn(&Path) -> Command, seed: u64) {
+    let (a, b) = (tmp.join("a"), tmp.join("b"));
+    run_ok(&mut command(&a));
+    let killed = kill_repeatedly(|| command(&b), &b, files(&a).len(), seed, 6);
+    assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
+    assert_same_outputs(&a, &b);
+}
+
 #[test]
 fn prep_killed_repeatedly_ends_like_an_uninterrupted_run() {
     let tmp = sinew_testkit::tempdir();
@@ -150,11 +162,7 @@ fn prep_killed_repeatedly_ends_like_an_uninterrupted_run() {
             .arg(out);
         c
     };
-    let (a, b) = (tmp.path().join("a"), tmp.path().join("b"));
-    run_ok(&mut prep(&a));
-    let killed = kill_repeatedly(|| prep(&b), &b, files(&a).len(), 0x92E9, 6);
-    assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
-    assert_same_outputs(&a, &b);
+    ends_like_an_uninterrupted_run(tmp.path(), prep, 0x92E9);
 }
 
 #[test]
@@ -170,11 +178,7 @@ fn cohort_killed_repeatedly_ends_like_an_uninterrupted_run() {
             .arg(out);
         c
     };
-    let (a, b) = (tmp.path().join("a"), tmp.path().join("b"));
-    run_ok(&mut cohort(&a));
-    let killed = kill_repeatedly(|| cohort(&b), &b, files(&a).len(), 0x00C0_4027, 6);
-    assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
-    assert_same_outputs(&a, &b);
+    ends_like_an_uninterrupted_run(tmp.path(), cohort, 0x00C0_4027);
 }
 
 /// A pid with no process (for planting leftovers of a "killed" run).

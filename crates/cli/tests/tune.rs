@@ -98,24 +98,19 @@ fn tune_runs_end_to_end_and_reports_on_held_out_pairs_only() {
     let held: Vec<_> = settings["holdout_pairs"].as_array().unwrap().iter().map(pair).collect();
     assert!(tuning.iter().all(|t| !held.contains(t)));
     assert_eq!(tuning.len() + held.len(), 6);
+    // The (fixed, moving) pairs a trial or hold-out record ran.
+    let pairs_of = |rec: &serde_json::Value| -> Vec<_> {
+        let pair = |p: &serde_json::Value| {
+            (p["fixed"].as_str().unwrap().to_string(), p["moving"].as_str().unwrap().to_string())
+        };
+        rec["pairs"].as_array().unwrap().iter().map(pair).collect()
+    };
     for t in 0..4 {
         let rec = json(&out.join(format!("trials/trial-{t:04}.json")));
-        let seen: Vec<_> = rec["pairs"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|p| (p["fixed"].as_str().unwrap().to_string(), p["moving"].as_str().unwrap().to_string()))
-            .collect();
-        assert_eq!(seen, tuning, "trial {t} must use exactly the tuning pairs");
+        assert_eq!(pairs_of(&rec), tuning, "trial {t} must use exactly the tuning pairs");
     }
     let hd = json(&out.join("holdout/default.json"));
-    let hseen: Vec<_> = hd["pairs"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|p| (p["fixed"].as_str().unwrap().to_string(), p["moving"].as_str().unwrap().to_string()))
-        .collect();
-    assert_eq!(hseen, held);
+    assert_eq!(pairs_of(&hd), held);
 
     // The Pareto column against the definition of Pareto dominance (more Dice, less folding):
     // a trial is on the front when no other trial is at least as good in both and better in one.

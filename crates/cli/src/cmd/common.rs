@@ -151,7 +151,7 @@ pub fn read_finite_image(path: &Path) -> anyhow::Result<Image> {
 }
 
 /// Reads a label map that must lie on `img`'s grid.
-fn read_labels_on(path: &Path, img: &Image, img_path: &Path) -> anyhow::Result<LabelMap> {
+pub fn read_labels_on(path: &Path, img: &Image, img_path: &Path) -> anyhow::Result<LabelMap> {
     let l = sinew_io::read_labels(path)?;
     if !l.grid.same_as(&img.grid, 1e-3) {
         bail!(

@@ -417,19 +417,7 @@ fn load(job: &Job, nan: common::NanPolicy) -> Result<(sinew_grid::Image, Option<
     let (img, bad) = common::read_image_nan(&job.image, nan)?;
     let replaced = bad.map_or(0, |b| b.iter().filter(|&&x| x).count());
     let lab = match &job.labels {
-        Some(p) => {
-            let l = sinew_io::read_labels(p)?;
-            if !l.grid.same_as(&img.grid, 1e-3) {
-                bail!(
-                    "{}: grid {:?} does not match its image {} ({:?}); a label map must lie on its image's grid",
-                    p.display(),
-                    l.grid.shape(),
-                    job.image.display(),
-                    img.grid.shape()
-                );
-            }
-            Some(l)
-        }
+        Some(p) => Some(common::read_labels_on(p, &img, &job.image)?),
         None => None,
     };
     Ok((img, lab, replaced))
