@@ -22,4 +22,4 @@ pub use affine::{det3, Affine};
 pub use error::GridError;
 pub use grid::{Grid, VoxelPoint, WorldPoint};
 pub use interp::Border;
-pub use volume::{par_component_slabs_mut, Field, Image, LabelMap, Volume};
+pub use volume::{par_component_slabs_collect, par_component_slabs_mut, Field, Image, LabelMap, Volume};

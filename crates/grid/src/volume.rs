@@ -225,12 +225,29 @@ pub fn par_component_slabs_mut<F>(data: &mut [f32], shape: [usize; 3], f: F)
 where
     F: Fn(usize, [&mut [f32]; 3]) + Send + Sync,
 {
+    // A vector of `()` never allocates.
+    par_component_slabs_collect(data, shape, &mut Vec::new(), f);
+}
+
+/// [`par_component_slabs_mut`] whose `f` returns a value per slab: `out` is set to the `nx`
+/// values in slab order (its allocation is reused), for sums that are then added in that order
+/// so that they do not depend on the thread count.
+///
+/// # Panics
+/// When `data.len() != 3·nx·ny·nz`.
+#[track_caller]
+pub fn par_component_slabs_collect<R, F>(data: &mut [f32], shape: [usize; 3], out: &mut Vec<R>, f: F)
+where
+    R: Send,
+    F: Fn(usize, [&mut [f32]; 3]) -> R + Send + Sync,
+{
     use rayon::prelude::*;
     let [nx, ny, nz] = shape;
     let n = nx * ny * nz;
     assert_eq!(data.len(), 3 * n, "a field-shaped buffer of shape {shape:?} holds 3·{n} values");
     let plane = ny * nz;
     if plane == 0 {
+        out.clear();
         return;
     }
     let (a, rest) = data.split_at_mut(n);
@@ -239,7 +256,8 @@ where
         .zip(b.par_chunks_mut(plane))
         .zip(c.par_chunks_mut(plane))
         .enumerate()
-        .for_each(|(i, ((x, y), z))| f(i, [x, y, z]));
+        .map(|(i, ((x, y), z))| f(i, [x, y, z]))
+        .collect_into_vec(out);
 }
 
 #[cfg(test)]
