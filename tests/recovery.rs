@@ -128,8 +128,8 @@ fn local_ncc_descriptor_ignores_an_affine_intensity_change() {
     let subject = generate(5, 1, &PhantomParams::small());
     let mut remapped = subject.image.clone();
     remapped.data.mapv_inplace(|v| 2.5 * v + 300.0);
-    let a = sinew_solve::local_standardised(&subject.image, 2.0);
-    let b = sinew_solve::local_standardised(&remapped, 2.0);
+    let a = sinew_features::local_standardised(&subject.image, 2.0);
+    let b = sinew_features::local_standardised(&remapped, 2.0);
     let worst = a.data.iter().zip(&b.data).map(|(x, y)| (x - y).abs()).fold(0.0f32, f32::max);
     assert!(worst < 1e-3, "largest difference {worst}");
 }

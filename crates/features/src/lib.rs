@@ -1,4 +1,5 @@
-//! Image features for registration: the MIND-SSC descriptor.
+//! Image features for registration: the MIND-SSC descriptor, and the intensity descriptors of
+//! the intensity-based data terms (SSD, local NCC).
 //!
 //! A descriptor turns each voxel of a scan into a short vector that describes its local
 //! structure and not its intensity, so that two scans of different contrast can be compared
@@ -12,7 +13,9 @@
 #![deny(missing_docs)]
 
 mod error;
+pub mod intensity;
 pub mod mind;
 
 pub use error::FeatureError;
+pub use intensity::{intensity_descriptor, local_standardised, DescriptorKind};
 pub use mind::{mind_ssc, mind_ssc_into, Descriptor, MindParams, MindScratch, SIX_NEIGHBOURS, SSC_CHANNELS, SSC_PAIRS};

@@ -3,7 +3,7 @@
 use std::time::Instant;
 
 use serde::Serialize;
-use sinew_features::{mind_ssc, Descriptor, MindParams};
+use sinew_features::{DescriptorKind, MindParams};
 use sinew_grid::{pyramid, resample, Field, Grid, Image, LabelMap};
 use sinew_transform::{jacobian_determinant, jacobian_stats, JacobianStats};
 
@@ -192,23 +192,16 @@ pub fn register(
     // The optimised variable carried from level to level (displacement, or velocity).
     let mut variable: Option<Field> = None;
     let mut reports = Vec::new();
-    let mind = MindParams { radius: params.mind_radius, dilation: params.mind_dilation };
+    // The data term's descriptor and the transform model, chosen once for every level.
+    let descriptor = descriptor_kind(params);
+    let parametrisation = model_of(params);
     for (step, level) in (params.finest_level..params.levels).rev().enumerate() {
         let desc_grid = fixed_pyr[level].grid.clone();
         let stride = params.stride_for(step, fixed.grid.spacing());
         let lattice = desc_grid.strided(stride);
         observer(Progress { level, stage: Stage::Descriptors, iteration: 0, iterations: 0, planned_iterations });
         let t = Instant::now();
-        let (fd, md) = match params.similarity {
-            Similarity::MindSsc => {
-                rayon::join(|| mind_ssc(&fixed_pyr[level], &mind), || mind_ssc(&moving_pyr[level], &mind))
-            }
-            Similarity::Ssd => (intensity_descriptor(&fixed_pyr[level]), intensity_descriptor(&moving_pyr[level])),
-            Similarity::Lncc => rayon::join(
-                || local_standardised(&fixed_pyr[level], params.ncc_sigma),
-                || local_standardised(&moving_pyr[level], params.ncc_sigma),
-            ),
-        };
+        let (fd, md) = rayon::join(|| descriptor.compute(&fixed_pyr[level]), || descriptor.compute(&moving_pyr[level]));
         let descriptors_s = t.elapsed().as_secs_f64();
         let level_mask = mask.map(|m| mask_on(m, &lattice));
         let init = match variable.take() {
@@ -228,10 +221,7 @@ pub fn register(
             mask: level_mask.as_deref(),
             lambda: params.lambda_at(step),
         };
-        let mut param: Box<dyn Parametrisation> = match params.model {
-            Model::Dense => Box::new(GaussianDense::new(lattice.shape(), params.update_sigma as f64)),
-            Model::Bspline => Box::new(BsplineModel::new(&lattice, params.grid_spacing_mm, params.bending)),
-        };
+        let mut param = parametrisation(&lattice);
         let plan = LevelPlan { iterations: params.iterations[step], step_size: params.step_size[step], level };
         let outcome = optimise_level(&problem, &mut param, init, base, &plan, params, observer)?;
         let optimise_s = t.elapsed().as_secs_f64();
@@ -270,6 +260,35 @@ pub fn register(
     }
     let upsample_s = t.elapsed().as_secs_f64();
     Ok(Registration { field, levels: reports, pyramid_s, upsample_s, affine, affine_s })
+}
+
+/// What the data term compares (`params.similarity`): the descriptor of each level's scans.
+fn descriptor_kind(params: &RegParams) -> DescriptorKind {
+    match params.similarity {
+        Similarity::MindSsc => {
+            DescriptorKind::MindSsc(MindParams { radius: params.mind_radius, dilation: params.mind_dilation })
+        }
+        Similarity::Ssd => DescriptorKind::Intensity,
+        Similarity::Lncc => DescriptorKind::LocalStandardised { sigma: params.ncc_sigma },
+    }
+}
+
+/// The transform model (`params.model`): what makes a level's parametrisation of the field on
+/// its lattice.
+type ModelMaker = Box<dyn Fn(&Grid) -> Box<dyn Parametrisation>>;
+
+/// The maker of each level's parametrisation for `params.model`.
+fn model_of(params: &RegParams) -> ModelMaker {
+    match params.model {
+        Model::Dense => {
+            let sigma = params.update_sigma as f64;
+            Box::new(move |lattice| Box::new(GaussianDense::new(lattice.shape(), sigma)))
+        }
+        Model::Bspline => {
+            let (spacing_mm, bending) = (params.grid_spacing_mm, params.bending);
+            Box::new(move |lattice| Box::new(BsplineModel::new(lattice, spacing_mm, bending)))
+        }
+    }
 }
 
 /// What one level runs.
@@ -591,41 +610,6 @@ fn prepare_intensities(fixed: &Image, moving: &Image, sim: Similarity) -> (Image
     }
 }
 
-/// The local-NCC descriptor: `(I − μ)/√(v + ε)` with `μ = G_σ·I` and `v = G_σ·I² − μ²`
-/// (Gaussian window of σ voxels), scaled by 1/√2 so that its squared difference is
-/// `1 − NCC` for unit-variance windows. `ε` is 1e-3 of the image's mean local variance, so
-/// flat regions (noise only) do not blow up.
-pub fn local_standardised(img: &Image, sigma: f64) -> Descriptor {
-    let sp = [1.0; 3];
-    // Standardise globally first (statistics in f64), so that the local moments below are of
-    // order one and `E[I²] − μ²` does not cancel catastrophically in f32.
-    let s = img.as_slice();
-    let n = s.len() as f64;
-    let gm = s.iter().map(|&v| v as f64).sum::<f64>() / n;
-    let gv = s.iter().map(|&v| (v as f64 - gm).powi(2)).sum::<f64>() / n;
-    let gs = if gv > 0.0 { 1.0 / gv.sqrt() } else { 1.0 };
-    let z = img.data.mapv(|v| ((v as f64 - gm) * gs) as f32);
-    let mut mean = z.clone();
-    sinew_grid::smooth::gaussian_smooth(&mut mean, sp, sigma);
-    let mut sq = z.mapv(|v| v * v);
-    sinew_grid::smooth::gaussian_smooth(&mut sq, sp, sigma);
-    let var: Vec<f32> = sq.iter().zip(mean.iter()).map(|(&s, &m)| (s - m * m).max(0.0)).collect();
-    let mean_var = var.iter().map(|&v| v as f64).sum::<f64>() / var.len() as f64;
-    let eps = (1e-3 * mean_var).max(1e-12) as f32;
-    let data = z
-        .iter()
-        .zip(mean.iter())
-        .zip(&var)
-        .map(|((&v, &m), &s)| (v - m) / (s + eps).sqrt() * std::f32::consts::FRAC_1_SQRT_2)
-        .collect();
-    Descriptor { grid: img.grid.clone(), channels: 1, data }
-}
-
-/// A one-channel "descriptor" holding the intensities.
-fn intensity_descriptor(img: &Image) -> Descriptor {
-    Descriptor { grid: img.grid.clone(), channels: 1, data: img.as_slice().to_vec() }
-}
-
 /// Refuses scans holding NaN or infinite voxels, naming the scan and the count.
 pub(crate) fn ensure_finite(fixed: &Image, moving: &Image) -> Result<(), SolveError> {
     for (which, img) in [("fixed", fixed), ("moving", moving)] {
@@ -681,8 +665,8 @@ mod tests {
         e.total += curvature.evaluate(&u, kappa, &mut g);
         share.remove_share(&v, problem.lambda, &mut e, &mut g);
         let scale = e_direct.total.abs().max(1e-12);
-        assert!((e.total - e_direct.total).abs() < 1e-4 * scale, "{} vs {}", e.total, e_direct.total);
-        assert!((e.diffusion - e_direct.diffusion).abs() < 1e-4 * e_direct.diffusion.abs(), "{e:?} vs {e_direct:?}");
+        approx::assert_relative_eq!(e.total, e_direct.total, max_relative = 1e-4);
+        assert!(approx::relative_eq!(e.diffusion, e_direct.diffusion, max_relative = 1e-4), "{e:?} vs {e_direct:?}");
         let gmax = g_direct.iter().fold(0.0f32, |m, x| m.max(x.abs()));
         let worst = g.iter().zip(&g_direct).fold(0.0f32, |m, (x, y)| m.max((x - y).abs()));
         assert!(worst < 1e-3 * gmax, "gradient differs by {worst} (largest {gmax})");
@@ -703,7 +687,7 @@ mod tests {
             [[t.cos(), -t.sin(), 0.0], [t.sin(), t.cos(), 0.0], [0.0, 0.0, 1.0]],
             [0.0; 3],
         );
-        assert!((linear_part_departure(&turn, &grid) - t.sin()).abs() < 1e-12);
+        approx::assert_abs_diff_eq!(linear_part_departure(&turn, &grid), t.sin(), epsilon = 1e-12);
         assert!(linear_part_departure(&turn, &grid) > SAMPLE_THROUGH_MAX);
     }
 

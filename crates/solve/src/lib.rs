@@ -25,7 +25,7 @@ pub mod svf;
 #[cfg(test)]
 mod testing;
 
-pub use driver::{local_standardised, register, EnergyReport, LevelReport, Progress, Registration, Stage};
+pub use driver::{register, EnergyReport, LevelReport, Progress, Registration, Stage};
 pub use error::SolveError;
 pub use frames::InitialMode;
 pub use native::{native_outputs, NativeField, NativeOutputs};
