@@ -137,12 +137,20 @@ fn assert_same_outputs(a: &Path, b: &Path) {
     }
 }
 
-/// Runs `command` (made for an output folder) into `tmp/a` uninterrupted, then into `tmp/b`
-/// six times killed at seeded points ([`kill_repeatedly`], seed `seed`) and once to the end:
-/// at least four of the six runs must be interrupted, and `b` must end as `a`
+/// `sinew ARGS DEMO -o OUT` on a 3-subject demo cohort, run into `a` uninterrupted, then into
+/// `b` six times killed at seeded points ([`kill_repeatedly`], seed `seed`) and once to the
+/// end: at least four of the six runs must be interrupted, and `b` must end as `a`
 /// ([`assert_same_outputs`]).
-fn ends_like_an_uninterrupted_run(tmp: &Path, command: impl Fn(&Path) -> Command, seed: u64) {
-    let (a, b) = (tmp.join("a"), tmp.join("b"));
+fn killed_repeatedly_ends_like_an_uninterrupted_run(args: &[&str], seed: u64) {
+    let tmp = sinew_testkit::tempdir();
+    let data = tmp.path().join("demo");
+    SINEW.demo(&data, 3, &[]);
+    let command = |out: &Path| {
+        let mut c = SINEW.cmd();
+        c.args(args).arg(&data).arg("-o").arg(out);
+        c
+    };
+    let (a, b) = (tmp.path().join("a"), tmp.path().join("b"));
     run_ok(&mut command(&a));
     let killed = kill_repeatedly(|| command(&b), &b, files(&a).len(), seed, 6);
     assert!(killed >= 4, "only {killed} of 6 runs were interrupted");
@@ -151,34 +159,14 @@ fn ends_like_an_uninterrupted_run(tmp: &Path, command: impl Fn(&Path) -> Command
 
 #[test]
 fn prep_killed_repeatedly_ends_like_an_uninterrupted_run() {
-    let tmp = sinew_testkit::tempdir();
-    let data = tmp.path().join("demo");
-    SINEW.demo(&data, 3, &[]);
-    let prep = |out: &Path| {
-        let mut c = SINEW.cmd();
-        c.args(["prep", "-q", "--spacing", "3,3,3", "--window=-200,300", "--scale", "unit", "--mask-out", "-j", "2"])
-            .arg(&data)
-            .arg("-o")
-            .arg(out);
-        c
-    };
-    ends_like_an_uninterrupted_run(tmp.path(), prep, 0x92E9);
+    let args = ["prep", "-q", "--spacing", "3,3,3", "--window=-200,300", "--scale", "unit", "--mask-out", "-j", "2"];
+    killed_repeatedly_ends_like_an_uninterrupted_run(&args, 0x92E9);
 }
 
 #[test]
 fn cohort_killed_repeatedly_ends_like_an_uninterrupted_run() {
-    let tmp = sinew_testkit::tempdir();
-    let data = tmp.path().join("demo");
-    SINEW.demo(&data, 3, &[]);
-    let cohort = |out: &Path| {
-        let mut c = SINEW.cmd();
-        c.args(["cohort", "-q", "--preset", "fast", "--iterations", "5,5,5,5", "-j", "2", "--all-pairs"])
-            .arg(&data)
-            .arg("-o")
-            .arg(out);
-        c
-    };
-    ends_like_an_uninterrupted_run(tmp.path(), cohort, 0x00C0_4027);
+    let args = ["cohort", "-q", "--preset", "fast", "--iterations", "5,5,5,5", "-j", "2", "--all-pairs"];
+    killed_repeatedly_ends_like_an_uninterrupted_run(&args, 0x00C0_4027);
 }
 
 /// A pid with no process (for planting leftovers of a "killed" run).

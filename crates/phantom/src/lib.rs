@@ -190,6 +190,7 @@ pub fn cohort(seed: u64, n: usize, params: &PhantomParams) -> Vec<Subject> {
 
 mod deform;
 pub use deform::known_field;
+pub use rng::splitmix64;
 
 #[cfg(test)]
 mod tests;

@@ -40,22 +40,11 @@ pub struct InputRecord {
 }
 
 impl Inputs {
-    /// Reads every input and checks that labels and masks match their scan's grid and that
-    /// the scans hold no NaN or infinite voxels.
-    pub fn load(
-        fixed: &Path,
-        moving: &Path,
-        fixed_labels: Option<&Path>,
-        moving_labels: Option<&Path>,
-        mask: Option<&Path>,
-    ) -> anyhow::Result<Inputs> {
-        Inputs::load_with(fixed, moving, fixed_labels, moving_labels, mask, NanPolicy::Refuse)
-    }
-
-    /// [`Inputs::load`] with a policy for NaN or infinite voxels. With [`NanPolicy::Pad`],
+    /// Reads every input and checks that labels and masks match their scan's grid, with a
+    /// policy for NaN or infinite voxels ([`NanPolicy::Refuse`]: none may be). With [`NanPolicy::Pad`],
     /// the fixed scan's non-finite voxels are also removed from the mask (a mask of the
     /// finite voxels is made when none is given), so they do not drive the data term.
-    pub fn load_with(
+    pub fn load(
         fixed: &Path,
         moving: &Path,
         fixed_labels: Option<&Path>,

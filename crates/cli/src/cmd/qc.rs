@@ -10,7 +10,7 @@ use sinew_grid::{resample, Border, Field, Image, LabelMap};
 use sinew_io::{FieldReadOptions, FieldUnits};
 use sinew_qc::{QcInput, QcOptions, Window};
 
-use crate::cmd::common::{Inputs, PairScans};
+use crate::cmd::common::{Inputs, NanPolicy, PairScans};
 use crate::cmd::register::UnitsArg;
 
 /// Arguments of `sinew qc`.
@@ -105,9 +105,15 @@ pub fn run(args: QcArgs) -> anyhow::Result<()> {
     inputs_list.extend(args.fixed_labels.as_deref());
     inputs_list.extend(args.moving_labels.as_deref());
     sinew_io::atomic::ensure_not_input(&args.out, &inputs_list)?;
-    let inputs =
-        Inputs::load(&args.fixed, &args.moving, args.fixed_labels.as_deref(), args.moving_labels.as_deref(), None)?
-            .scans;
+    let inputs = Inputs::load(
+        &args.fixed,
+        &args.moving,
+        args.fixed_labels.as_deref(),
+        args.moving_labels.as_deref(),
+        None,
+        NanPolicy::Refuse,
+    )?
+    .scans;
     let fopts = FieldReadOptions { units: args.units.map(FieldUnits::from), ..Default::default() };
     let (field, _) = sinew_io::read_field(&args.field, fopts)?;
     if !field.is_finite() {

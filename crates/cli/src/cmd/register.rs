@@ -569,7 +569,7 @@ pub fn run(args: RegisterArgs) -> anyhow::Result<()> {
 pub fn run_pair(args: &PairRequest, params: &RegParams) -> anyhow::Result<Report> {
     let t_all = Instant::now();
     let scan_opts = &args.scan;
-    let inputs = Inputs::load_with(
+    let inputs = Inputs::load(
         &args.fixed,
         &args.moving,
         args.fixed_labels.as_deref(),

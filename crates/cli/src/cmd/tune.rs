@@ -210,7 +210,7 @@ impl Ctx<'_> {
             return Ok(i.clone());
         }
         let (f, m) = (&self.subjects[pair.fixed], &self.subjects[pair.moving]);
-        let inputs = std::sync::Arc::new(common::Inputs::load_with(
+        let inputs = std::sync::Arc::new(common::Inputs::load(
             &f.image,
             &m.image,
             Some(&f.labels),
@@ -300,28 +300,16 @@ fn summarise(f: &[PairFigures], stopped_early: bool) -> Outcome {
     }
 }
 
-/// SplitMix64 ("Fast splittable pseudorandom number generators", OOPSLA 2014): a small,
-/// value-stable generator, so the held-out split of a seed never changes.
-struct SplitMix(u64);
-
-impl SplitMix {
-    fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-}
-
 /// The held-out positions among `n` pairs: `round(fraction·n)` of them (at least 1 and at
-/// most n − 1), drawn by a Fisher–Yates shuffle seeded with `seed`, returned ascending.
+/// most n − 1), drawn by a Fisher–Yates shuffle from SplitMix64 (`sinew_phantom::splitmix64`, a
+/// value-stable generator, so the held-out split of a seed never changes) seeded with `seed`,
+/// returned ascending.
 pub fn holdout_split(n: usize, fraction: f64, seed: u64) -> Vec<usize> {
     let k = ((fraction * n as f64).round() as usize).clamp(1, n.saturating_sub(1).max(1));
     let mut order: Vec<usize> = (0..n).collect();
-    let mut rng = SplitMix(seed);
+    let mut state = seed;
     for i in (1..n).rev() {
-        let j = (rng.next() % (i as u64 + 1)) as usize;
+        let j = (sinew_phantom::splitmix64(&mut state) % (i as u64 + 1)) as usize;
         order.swap(i, j);
     }
     let mut held: Vec<usize> = order[..k].to_vec();
