@@ -20,10 +20,36 @@ pub fn resample_image(src: &Image, target: &Grid, border: Border) -> Image {
 }
 
 /// Resamples a label map onto `target` by nearest neighbour; outside is label 0.
+///
+/// When `target` has the shape of `src` and the voxel map moves no voxel by a quarter voxel
+/// or more (the label map already lies on `target`, as the moving labels of two scans on one
+/// grid do), every rounded position is the voxel itself, so the labels are copied as they are
+/// (the same values as sampling each voxel).
 pub fn resample_labels(src: &LabelMap, target: &Grid) -> LabelMap {
     let m = voxel_map(target, &src.grid);
+    if target.shape() == src.grid.shape() && moves_less_than_a_quarter(&m, target.shape()) {
+        return Volume { grid: target.clone(), data: src.data.clone() };
+    }
     let out = map_voxels(target, &m, |p| interp::nearest(src.as_slice(), src.grid.shape(), p, 0u16));
     Volume { grid: target.clone(), data: out }
+}
+
+/// True when `|m·p − p| < 1/4` voxel along every axis for every voxel `p` of a grid of
+/// `shape`: per row `r`, `Σ_c |m_rc − δ_rc|·(n_c − 1) + |t_r| < 1/4` bounds the move (the
+/// largest `|p_c|` is `n_c − 1`). The sampler rounds `p + e` to f32 first: `p` (an index below
+/// 2²⁴) is an f32 itself, so the nearest f32 to `p + e` lies within `2·|e| < 1/2` of `p`, and
+/// rounding it to the nearest integer gives `p` again: nearest-neighbour sampling through `m`
+/// reads voxel `p` itself.
+fn moves_less_than_a_quarter(m: &Affine, shape: [usize; 3]) -> bool {
+    shape.iter().all(|&n| n < 1 << 24)
+        && (0..3).all(|r| {
+            let row = &m.m[r];
+            let bound: f64 = (0..3)
+                .map(|c| (row[c] - f64::from(u8::from(r == c))).abs() * (shape[c].max(1) - 1) as f64)
+                .sum::<f64>()
+                + row[3].abs();
+            bound < 0.25
+        })
 }
 
 /// Fills an array on `target` with `f(m · p)` for every voxel `p`, in parallel over `i` slabs.
@@ -67,6 +93,22 @@ mod tests {
         lab.data[[3, 2, 1]] = 7;
         let rl = resample_labels(&lab, &shifted);
         assert_eq!(rl.data[[2, 2, 1]], 7);
+        // Exact facts of nearest-neighbour sampling: a target shifted by 0.2 voxel (0.4 mm
+        // along i) reads every voxel itself (the copy of a map already on the grid); shifted by
+        // 0.6 voxel it reads the next voxel along i, and label 0 beyond the last one.
+        for (i, j, k) in [(0usize, 0usize, 0usize), (3, 2, 1), (5, 4, 3)] {
+            lab.data[[i, j, k]] = (1 + i * 100 + j * 10 + k) as u16;
+        }
+        let near = Grid::axis_aligned([6, 5, 4], [2.0, 2.0, 3.0], [10.4, -4.0, 0.0]);
+        let rn = resample_labels(&lab, &near);
+        assert_eq!(rn.data, lab.data);
+        assert_eq!(rn.grid, near);
+        let far = Grid::axis_aligned([6, 5, 4], [2.0, 2.0, 3.0], [11.2, -4.0, 0.0]);
+        let rf = resample_labels(&lab, &far);
+        for ((i, j, k), &v) in rf.data.indexed_iter() {
+            let want = if i + 1 < 6 { lab.data[[i + 1, j, k]] } else { 0 };
+            assert_eq!(v, want, "({i}, {j}, {k})");
+        }
     }
 }
 
