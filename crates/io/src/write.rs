@@ -286,9 +286,9 @@ impl PlaneWriter {
     pub fn write_f32(&mut self, values: &[f32]) -> Result<(), IoError> {
         assert_eq!(self.datatype, DataType::F32, "a float writer");
         self.take(values.len());
-        self.bytes.reserve(4 * values.len());
-        for v in values {
-            self.bytes.extend_from_slice(&v.to_le_bytes());
+        self.bytes.resize(4 * values.len(), 0);
+        for (b, v) in self.bytes.chunks_exact_mut(4).zip(values) {
+            b.copy_from_slice(&v.to_le_bytes());
         }
         self.put()
     }
@@ -303,9 +303,9 @@ impl PlaneWriter {
         match self.datatype {
             DataType::U8 => self.bytes.extend(values.iter().map(|&v| u8::try_from(v).expect("label below max_label"))),
             DataType::U16 => {
-                self.bytes.reserve(2 * values.len());
-                for v in values {
-                    self.bytes.extend_from_slice(&v.to_le_bytes());
+                self.bytes.resize(2 * values.len(), 0);
+                for (b, v) in self.bytes.chunks_exact_mut(2).zip(values) {
+                    b.copy_from_slice(&v.to_le_bytes());
                 }
             }
             _ => panic!("a label writer"),
@@ -440,35 +440,42 @@ pub fn write_field(path: &Path, field: &Field, units: FieldUnits) -> Result<(), 
     let shape = field.grid.shape();
     let [nx, ny, nz] = shape;
     let step = block_planes(nx, ny);
-    let n = nx * ny * step.min(nz);
-    let mut vox = [vec![0.0f32; n], vec![0.0f32; n], vec![0.0f32; n]];
-    let mut out = vec![0.0f32; n];
+    let mut out = vec![0.0f32; nx * ny * step.min(nz)];
     let lin = field.grid.affine().linear();
+    let comps = [field.component(0), field.component(1), field.component(2)];
     // Disk order: i fastest, then j, k, (t), component.
     for (c, r) in lin.iter().enumerate() {
         for k0 in (0..nz).step_by(step) {
-            let len = nx * ny * step.min(nz - k0);
-            let planes = match units {
-                FieldUnits::Voxel => {
-                    to_disk_planes(field.component(c), shape, k0, &mut out[..len]);
-                    &out[..len]
-                }
-                FieldUnits::Mm => {
-                    for (d, v) in vox.iter_mut().enumerate() {
-                        to_disk_planes(field.component(d), shape, k0, &mut v[..len]);
-                    }
-                    // u_mm = M · u_vox, in f64 as Field::to_world_mm.
-                    for (t, o) in out[..len].iter_mut().enumerate() {
-                        let v = [vox[0][t] as f64, vox[1][t] as f64, vox[2][t] as f64];
-                        *o = (r[0] * v[0] + r[1] * v[1] + r[2] * v[2]) as f32;
-                    }
-                    &out[..len]
-                }
-            };
+            let planes = &mut out[..nx * ny * step.min(nz - k0)];
+            match units {
+                FieldUnits::Voxel => to_disk_planes(comps[c], shape, k0, planes),
+                FieldUnits::Mm => to_disk_planes_mm(comps, *r, shape, k0, planes),
+            }
             w.write_f32(planes)?;
         }
     }
     w.finish()
+}
+
+/// [`to_disk_planes`] of one world component of a field held in voxels: `out` receives
+/// `u_mm = r · u_vox` (`r` a row of the grid's linear part), formed in f64 and rounded once,
+/// as [`Field::to_world_mm`] does. Parallel over `j`.
+fn to_disk_planes_mm(comps: [&[f32]; 3], r: [f64; 3], shape: [usize; 3], k0: usize, out: &mut [f32]) {
+    use ndarray::{ArrayViewMut3, Axis};
+    use rayon::prelude::*;
+    let [nx, ny, nz] = shape;
+    let nk = out.len() / (nx * ny);
+    let mut view = ArrayViewMut3::from_shape((nk, ny, nx), out).expect("whole planes");
+    view.axis_iter_mut(Axis(1)).into_par_iter().enumerate().for_each(|(j, mut rows)| {
+        for (kk, mut row) in rows.outer_iter_mut().enumerate() {
+            let row = row.as_slice_mut().expect("rows are contiguous");
+            for (i, o) in row.iter_mut().enumerate() {
+                let n = (i * ny + j) * nz + k0 + kk;
+                let v = [comps[0][n] as f64, comps[1][n] as f64, comps[2][n] as f64];
+                *o = (r[0] * v[0] + r[1] * v[1] + r[2] * v[2]) as f32;
+            }
+        }
+    });
 }
 
 #[cfg(test)]
