@@ -52,12 +52,18 @@ impl Inputs {
         mask: Option<&Path>,
         nan: NanPolicy,
     ) -> anyhow::Result<Inputs> {
-        // Both scans at once (decompression is single-threaded per file).
-        let (f, m) = rayon::join(|| read_image_nan(fixed, nan), || read_image_nan(moving, nan));
+        // Scans and label maps at once (decompression is single-threaded per file); errors are
+        // reported in the order fixed, moving, fixed labels, moving labels.
+        let labels = |p: Option<&Path>| p.map(sinew_io::read_labels).transpose();
+        let ((f, fl), (m, ml)) = rayon::join(
+            || rayon::join(|| read_image_nan(fixed, nan), || labels(fixed_labels)),
+            || rayon::join(|| read_image_nan(moving, nan), || labels(moving_labels)),
+        );
         let (fixed_img, fixed_bad) = f?;
         let (moving_img, moving_bad) = m?;
-        let fixed_labels_map = fixed_labels.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
-        let moving_labels_map = moving_labels.map(|p| read_labels_on(p, &moving_img, moving)).transpose()?;
+        let fixed_labels_map = fixed_labels.zip(fl?).map(|(p, l)| labels_on(p, l, &fixed_img, fixed)).transpose()?;
+        let moving_labels_map =
+            moving_labels.zip(ml?).map(|(p, l)| labels_on(p, l, &moving_img, moving)).transpose()?;
         let mut mask_map = mask.map(|p| read_labels_on(p, &fixed_img, fixed)).transpose()?;
         sinew_solve::nan::pad_fixed_mask(nan, fixed_bad.as_deref(), &mut mask_map, &fixed_img)
             .map_err(|e| anyhow::anyhow!("{}: {e}", fixed.display()))?;
@@ -141,7 +147,11 @@ pub fn read_finite_image(path: &Path) -> anyhow::Result<Image> {
 
 /// Reads a label map that must lie on `img`'s grid.
 pub fn read_labels_on(path: &Path, img: &Image, img_path: &Path) -> anyhow::Result<LabelMap> {
-    let l = sinew_io::read_labels(path)?;
+    labels_on(path, sinew_io::read_labels(path)?, img, img_path)
+}
+
+/// The label map `l` read from `path`, refused unless it lies on `img`'s grid.
+fn labels_on(path: &Path, l: LabelMap, img: &Image, img_path: &Path) -> anyhow::Result<LabelMap> {
     if !l.grid.same_as(&img.grid, 1e-3) {
         bail!(
             "{}: grid {:?} does not match its scan {} ({:?}); resample it onto the scan's grid first",

@@ -622,13 +622,15 @@ pub fn run_pair(args: &PairRequest, params: &RegParams) -> anyhow::Result<Report
     // The stage ran after the initial alignment; the file holds the whole linear map.
     let linear = reg.linear_record();
     let written = (|| -> anyhow::Result<Report> {
-        write_outputs(&out_paths, &reg.field, args.field_units.into(), &native)?;
+        // The QC sheet is drawn while the outputs are written.
+        let (written, qc) = rayon::join(
+            || write_outputs(&out_paths, &reg.field, args.field_units.into(), &native),
+            || out_paths.qc.as_ref().map(|_| draw_qc(args, scans, &reg, &native)).transpose(),
+        );
+        written?;
+        let qc = qc?;
         if let Some(path) = &out_paths.affine {
             common::write_json(path, &LinearRecord { matrix: reg.linear_map, initial: &reg.initial, stage: &linear })?;
-        }
-        let mut qc = None;
-        if out_paths.qc.is_some() {
-            qc = Some(draw_qc(args, scans, &reg, &native)?);
         }
         timings.write_s = Some(t.elapsed().as_secs_f64());
         timings.total_s = t_all.elapsed().as_secs_f64();
@@ -787,23 +789,38 @@ fn write_outputs(
     units: FieldUnits,
     native: &sinew_solve::NativeOutputs,
 ) -> anyhow::Result<()> {
-    write_native_field(&p.field, field, units)?;
-    if let Some(npy) = &p.npy {
-        // `.npy` is channel-last: the whole field is formed once (3 × 4 bytes per voxel).
-        sinew_io::write_npy_field(npy, &field.to_field())?;
-    }
-    sinew_io::write_image(&p.warped, &native.warped)?;
-    if let (Some(path), Some(l)) = (&p.warped_labels, &native.warped_labels) {
-        sinew_io::write_labels(path, l)?;
-    }
-    sinew_io::write_image(&p.jacdet, &native.jacdet)?;
-    Ok(())
+    // The files are independent: the field on one side, the volumes on the other (each
+    // writer's bytes do not depend on what runs beside it).
+    let (field_written, volumes_written) = rayon::join(
+        || -> anyhow::Result<()> {
+            write_native_field(&p.field, field, units)?;
+            if let Some(npy) = &p.npy {
+                // `.npy` is channel-last: the whole field is formed once (3 × 4 bytes per voxel).
+                sinew_io::write_npy_field(npy, &field.to_field())?;
+            }
+            Ok(())
+        },
+        || -> anyhow::Result<()> {
+            sinew_io::write_image(&p.warped, &native.warped)?;
+            if let (Some(path), Some(l)) = (&p.warped_labels, &native.warped_labels) {
+                sinew_io::write_labels(path, l)?;
+            }
+            sinew_io::write_image(&p.jacdet, &native.jacdet)?;
+            Ok(())
+        },
+    );
+    field_written.and(volumes_written)
 }
 
 /// Writes the native field block by block of `k` planes (about 4 M voxels each), as
 /// `sinew_io::write_field` would write the whole field: component 0 on every plane, then 1,
 /// then 2, each in `units` (mm: `u_mm = M·u_vox` with `M` the fixed grid's linear part).
 fn write_native_field(path: &Path, field: &sinew_solve::NativeField, units: FieldUnits) -> anyhow::Result<()> {
+    if let Some(whole) = field.as_full() {
+        // Held whole (the registration ran on the fixed grid): read it where it lies.
+        sinew_io::write_field(path, whole, units)?;
+        return Ok(());
+    }
     let grid = field.grid();
     let [nx, ny, nz] = grid.shape();
     let step = ((4usize << 20) / (nx * ny)).clamp(1, nz);
