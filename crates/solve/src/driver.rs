@@ -183,10 +183,11 @@ pub fn register(
         iterations: 0,
         planned_iterations,
     });
-    let (fixed_n, moving_n) = prepare_intensities(fixed, moving, params.similarity);
-    let fixed_pyr = pyramid::build(&fixed_n, params.levels);
-    let moving_pyr = pyramid::build(&moving_n, params.levels);
-    drop((fixed_n, moving_n));
+    let normalised = prepare_intensities(fixed, moving, params.similarity);
+    let (fixed_n, moving_n) = normalised.as_ref().map_or((fixed, moving), |(f, m)| (f, m));
+    let (fixed_pyr, moving_pyr) =
+        rayon::join(|| pyramid::build(fixed_n, params.levels), || pyramid::build(moving_n, params.levels));
+    drop(normalised);
     let pyramid_s = t0.elapsed().as_secs_f64();
 
     // The optimised variable carried from level to level (displacement, or velocity).
@@ -592,9 +593,10 @@ fn mask_on(mask: &LabelMap, grid: &Grid) -> Vec<bool> {
 
 /// For SSD the images are scaled by the fixed image's standard deviation (so λ means the
 /// same as with descriptors, whose values lie in [0, 1]); MIND-SSC is invariant to this.
-fn prepare_intensities(fixed: &Image, moving: &Image, sim: Similarity) -> (Image, Image) {
+/// `None`: the images are used as they are.
+fn prepare_intensities(fixed: &Image, moving: &Image, sim: Similarity) -> Option<(Image, Image)> {
     match sim {
-        Similarity::MindSsc | Similarity::Lncc => (fixed.clone(), moving.clone()),
+        Similarity::MindSsc | Similarity::Lncc => None,
         Similarity::Ssd => {
             let s = fixed.as_slice();
             let n = s.len() as f64;
@@ -605,7 +607,7 @@ fn prepare_intensities(fixed: &Image, moving: &Image, sim: Similarity) -> (Image
             let mut m = moving.clone();
             f.data.mapv_inplace(|v| (v - mean as f32) * scale);
             m.data.mapv_inplace(|v| (v - mean as f32) * scale);
-            (f, m)
+            Some((f, m))
         }
     }
 }
