@@ -177,26 +177,39 @@ pub fn round_f32(x: f32) -> f32 {
     }
 }
 
-/// Trilinear interpolation of `data` (standard order, shape `shape`) at voxel position `p`.
-///
-/// `f(p) = Σ_{c ∈ {0,1}³} w_c · data[⌊p⌋ + c]`, with `w_c = Π_d (c_d ? t_d : 1 − t_d)` and
-/// `t = p − ⌊p⌋`. Outside the volume: [`Border::Nearest`] is the shared border rule of the
-/// module docs (through [`stencil`]); [`Border::Constant`] blends in a padding value.
-#[inline]
-pub fn trilinear(data: &[f32], shape: [usize; 3], p: [f32; 3], border: Border) -> f32 {
-    let (nx, ny, nz) = (shape[0] as isize, shape[1] as isize, shape[2] as isize);
-    let fx = floor_f32(p[0]);
-    let fy = floor_f32(p[1]);
-    let fz = floor_f32(p[2]);
-    let (tx, ty, tz) = (p[0] - fx, p[1] - fy, p[2] - fz);
-    let (x0, y0, z0) = (fx as isize, fy as isize, fz as isize);
-    // `x0 < nx - 1` rather than `x0 + 1 < nx`: a huge finite position saturates `x0` at
-    // isize::MAX, where `x0 + 1` would overflow.
-    if x0 >= 0 && y0 >= 0 && z0 >= 0 && x0 < nx - 1 && y0 < ny - 1 && z0 < nz - 1 {
-        // Fast path: all eight neighbours inside.
+/// The fast path of [`trilinear`]: a position whose eight neighbours all lie inside the
+/// volume, as the index of its lower corner and the fractions along each axis. Several
+/// volumes of one shape (a field's components) sampled at one position share it.
+#[derive(Clone, Copy, Debug)]
+pub struct InsideCell {
+    /// Index of the lower corner `(⌊p_i⌋, ⌊p_j⌋, ⌊p_k⌋)` in standard order.
+    base: usize,
+    /// `p − ⌊p⌋` per axis.
+    t: [f32; 3],
+}
+
+impl InsideCell {
+    /// The cell at `p` in a volume of `shape`, when all eight neighbours are inside.
+    #[inline(always)]
+    pub fn at(p: [f32; 3], shape: [usize; 3]) -> Option<InsideCell> {
+        let (nx, ny, nz) = (shape[0] as isize, shape[1] as isize, shape[2] as isize);
+        let (fx, fy, fz) = (floor_f32(p[0]), floor_f32(p[1]), floor_f32(p[2]));
+        let (x0, y0, z0) = (fx as isize, fy as isize, fz as isize);
+        // `x0 < nx - 1` rather than `x0 + 1 < nx`: a huge finite position saturates `x0` at
+        // isize::MAX, where `x0 + 1` would overflow.
+        (x0 >= 0 && y0 >= 0 && z0 >= 0 && x0 < nx - 1 && y0 < ny - 1 && z0 < nz - 1).then(|| InsideCell {
+            base: (x0 as usize * shape[1] + y0 as usize) * shape[2] + z0 as usize,
+            t: [p[0] - fx, p[1] - fy, p[2] - fz],
+        })
+    }
+
+    /// The trilinear value of `data` (shape `shape`) in this cell: along `k`, then `j`, then `i`.
+    #[inline(always)]
+    pub fn sample(&self, data: &[f32], shape: [usize; 3]) -> f32 {
+        let [tx, ty, tz] = self.t;
         let sy = shape[2];
         let sx = shape[1] * shape[2];
-        let b = x0 as usize * sx + y0 as usize * sy + z0 as usize;
+        let b = self.base;
         let c000 = data[b];
         let c001 = data[b + 1];
         let c010 = data[b + sy];
@@ -211,8 +224,24 @@ pub fn trilinear(data: &[f32], shape: [usize; 3], p: [f32; 3], border: Border) -
         let c11 = c110 + tz * (c111 - c110);
         let c0 = c00 + ty * (c01 - c00);
         let c1 = c10 + ty * (c11 - c10);
-        return c0 + tx * (c1 - c0);
+        c0 + tx * (c1 - c0)
     }
+}
+
+/// Trilinear interpolation of `data` (standard order, shape `shape`) at voxel position `p`.
+///
+/// `f(p) = Σ_{c ∈ {0,1}³} w_c · data[⌊p⌋ + c]`, with `w_c = Π_d (c_d ? t_d : 1 − t_d)` and
+/// `t = p − ⌊p⌋`. Outside the volume: [`Border::Nearest`] is the shared border rule of the
+/// module docs (through [`stencil`]); [`Border::Constant`] blends in a padding value.
+#[inline]
+pub fn trilinear(data: &[f32], shape: [usize; 3], p: [f32; 3], border: Border) -> f32 {
+    if let Some(cell) = InsideCell::at(p, shape) {
+        return cell.sample(data, shape);
+    }
+    let (nx, ny, nz) = (shape[0] as isize, shape[1] as isize, shape[2] as isize);
+    let (fx, fy, fz) = (floor_f32(p[0]), floor_f32(p[1]), floor_f32(p[2]));
+    let (tx, ty, tz) = (p[0] - fx, p[1] - fy, p[2] - fz);
+    let (x0, y0, z0) = (fx as isize, fy as isize, fz as isize);
     if !(p[0].is_finite() && p[1].is_finite() && p[2].is_finite()) {
         return match border {
             Border::Constant(c) => c,

@@ -129,7 +129,11 @@ pub fn resample_field(src: &crate::Field, target: &Grid) -> crate::Field {
             for k in 0..nz {
                 let q = m.apply([i as f64, j as f64, k as f64]);
                 let p = [q[0] as f32, q[1] as f32, q[2] as f32];
-                let v = [0, 1, 2].map(|d| interp::trilinear(comps[d], shape, p, Border::Nearest) as f64);
+                // The three components share the cell (trilinear's own fast path).
+                let v = match interp::InsideCell::at(p, shape) {
+                    Some(cell) => [0, 1, 2].map(|d| cell.sample(comps[d], shape) as f64),
+                    None => [0, 1, 2].map(|d| interp::trilinear(comps[d], shape, p, Border::Nearest) as f64),
+                };
                 let w = [0, 1, 2].map(|r| (lin[r][0] * v[0] + lin[r][1] * v[1] + lin[r][2] * v[2]) as f32);
                 let idx = j * nz + k;
                 oa[idx] = w[0];
