@@ -190,7 +190,10 @@ pub fn mind_ssc_into(img: &Image, p: &MindParams, out: &mut Descriptor, scratch:
     let n = nx * plane;
     out.grid = img.grid.clone();
     out.channels = SSC_CHANNELS;
-    if out.data.len() != n * SSC_CHANNELS {
+    if out.data.is_empty() {
+        // Zeroed pages from the allocator (pass 1 writes every value): no fill pass.
+        out.data = vec![0.0; n * SSC_CHANNELS];
+    } else if out.data.len() != n * SSC_CHANNELS {
         out.data.resize(n * SSC_CHANNELS, 0.0);
     }
     let geo = Geo { shape, d, r, pny: ny + 2 * d, pnz: nz + 2 * d };
