@@ -105,10 +105,11 @@ impl Inputs {
         self.paths.iter().map(|(_, p)| p.clone()).collect()
     }
 
-    /// Records with checksums, for the report.
+    /// Records with checksums, for the report (the files hashed at the same time).
     pub fn records(&self) -> anyhow::Result<Vec<InputRecord>> {
+        use rayon::prelude::*;
         self.paths
-            .iter()
+            .par_iter()
             .map(|(role, p)| Ok(InputRecord { role, path: p.display().to_string(), sha256: sha256_file(p)? }))
             .collect()
     }

@@ -622,10 +622,10 @@ pub fn run_pair(args: &PairRequest, params: &RegParams) -> anyhow::Result<Report
     // The stage ran after the initial alignment; the file holds the whole linear map.
     let linear = reg.linear_record();
     let written = (|| -> anyhow::Result<Report> {
-        // The QC sheet is drawn while the outputs are written.
-        let (written, qc) = rayon::join(
+        // The QC sheet is drawn and the inputs hashed while the outputs are written.
+        let (written, (qc, records)) = rayon::join(
             || write_outputs(&out_paths, &reg.field, args.field_units.into(), &native),
-            || out_paths.qc.as_ref().map(|_| draw_qc(args, scans, &reg, &native)).transpose(),
+            || (out_paths.qc.as_ref().map(|_| draw_qc(args, scans, &reg, &native)).transpose(), inputs.records()),
         );
         written?;
         let qc = qc?;
@@ -638,7 +638,7 @@ pub fn run_pair(args: &PairRequest, params: &RegParams) -> anyhow::Result<Report
         let report = Report {
             caution: common::CAUTION,
             sinew_version: env!("CARGO_PKG_VERSION"),
-            inputs: inputs.records()?,
+            inputs: records?,
             params: params.clone(),
             scan: scan_opts.clone(),
             nan: inputs.nan,
