@@ -10,8 +10,11 @@
 //! method from gray-level histograms", IEEE Trans. Systems, Man, and Cybernetics 1979) on a
 //! 256-bin histogram of the finite values: the threshold `t` maximises the between-class
 //! variance `w₀(t)·w₁(t)·(μ₀(t) − μ₁(t))²`. When more than 60 % of the voxels lie above it
-//! (the lower class was only the padding outside a scanner's field of view), the threshold is
-//! searched again among the values above it, once.
+//! and the lower class is padding — at least half of it holds the one smallest value, as the
+//! constant written outside a scanner's field of view does — the threshold is searched again
+//! among the values above it, once. (Without the padding test, a body filling most of a tight
+//! field of view lost its soft tissue: the second search split it from the bone. Measured on
+//! a demo subject, seed 1001 subject 2: a 302 ml "body" of spine against 14.3 l.)
 //!
 //! **Moments** (world mm, each voxel weighing its volume): centre `c = mean(x)`, covariance
 //! `Σ = mean((x − c)(x − c)ᵀ)`; the principal axes are the eigenvectors of `Σ` (Jacobi
@@ -115,11 +118,22 @@ pub fn body_threshold(img: &Image) -> f32 {
     let vals = img.as_slice();
     let t = otsu(vals, f32::NEG_INFINITY);
     let above = vals.iter().filter(|&&v| v > t).count();
-    if above as f64 > 0.6 * vals.len() as f64 {
+    if above as f64 > 0.6 * vals.len() as f64 && lower_class_is_padding(vals, t) {
         otsu(vals, t)
     } else {
         t
     }
+}
+
+/// True when at least half of the finite values `≤ t` equal their minimum: a constant pad.
+fn lower_class_is_padding(vals: &[f32], t: f32) -> bool {
+    let lo = vals.iter().copied().filter(|v| v.is_finite()).fold(f32::INFINITY, f32::min);
+    let (mut below, mut at_min) = (0usize, 0usize);
+    for &v in vals.iter().filter(|v| v.is_finite() && **v <= t) {
+        below += 1;
+        at_min += usize::from(v == lo);
+    }
+    below > 0 && 2 * at_min >= below
 }
 
 /// Otsu's threshold over the finite values above `floor` (256 bins between their min and max).
@@ -209,6 +223,36 @@ pub fn body_moments(img: &Image, mask: &[bool], threshold: f32) -> BodyMoments {
         axes: vecs,
         extents_mm: vals.map(|v| v.max(0.0).sqrt()),
     }
+}
+
+/// For each world axis `d`: whether the mask reaches both faces of the grid along the grid
+/// axis whose direction is closest to `d` (the body is cut by the field of view there, so
+/// its extent and centre along `d` are the field of view's, not the body's).
+pub fn cut_world_axes(img: &Image, mask: &[bool]) -> [bool; 3] {
+    let [nx, ny, nz] = img.grid.shape();
+    let n = [nx, ny, nz];
+    // Along each grid axis: does any masked voxel lie in the first / last slice?
+    let mut first = [false; 3];
+    let mut last = [false; 3];
+    for (idx, _) in mask.iter().enumerate().filter(|(_, &m)| m) {
+        let ijk = [idx / (ny * nz), (idx / nz) % ny, idx % nz];
+        for a in 0..3 {
+            first[a] |= ijk[a] == 0;
+            last[a] |= ijk[a] + 1 == n[a];
+        }
+    }
+    let lin = img.grid.affine().linear();
+    std::array::from_fn(|d| {
+        // The grid axis with the largest direction component along world axis d.
+        let a = (0..3)
+            .max_by(|&p, &q| (lin[d][p] / norm_col(&lin, p)).abs().total_cmp(&(lin[d][q] / norm_col(&lin, q)).abs()))
+            .expect("three axes");
+        first[a] && last[a]
+    })
+}
+
+fn norm_col(lin: &[[f64; 3]; 3], c: usize) -> f64 {
+    (0..3).map(|r| lin[r][c] * lin[r][c]).sum::<f64>().sqrt()
 }
 
 /// Eigenvalues (descending) and unit eigenvectors (rows) of a symmetric 3×3 matrix, by cyclic
@@ -460,6 +504,58 @@ mod tests {
         let (c, _, _) = initial_alignment(&f, &f, InitialMode::Auto);
         assert!(!c.applied);
         approx::assert_abs_diff_eq!(c.overlap_identity, 1.0, epsilon = 1e-12);
+    }
+
+    #[test]
+    fn a_body_filling_the_field_of_view_keeps_its_soft_tissue() {
+        // Three classes as in a tight abdominal CT: air −1000 HU (with noise, 20 % of the
+        // voxels), soft tissue 40 HU (70 %), bone 700 HU (10 %). Otsu's first split is air
+        // against the rest, with 80 % above it; the air is not a constant pad, so no second
+        // search: the body is tissue and bone (the second search would keep bone alone).
+        let g = Grid::axis_aligned([100, 10, 10], [1.0; 3], [0.0; 3]);
+        let mut img = Image::filled(g, 0.0);
+        for ((i, j, k), v) in img.data.indexed_iter_mut() {
+            let noise = ((i * 7 + j * 13 + k * 29) % 21) as f32 - 10.0;
+            *v = match i {
+                0..=19 => -1000.0 + noise,
+                20..=89 => 40.0 + noise,
+                _ => 700.0 + noise,
+            };
+        }
+        let t = body_threshold(&img);
+        assert!((-990.0..30.0).contains(&t), "air | tissue split expected, got {t}");
+        // The same body with the air replaced by one constant pad value: the lower class is
+        // padding, the second search runs, and splits tissue from bone as before the fix.
+        img.data.indexed_iter_mut().filter(|((i, _, _), _)| *i < 20).for_each(|(_, v)| *v = -3024.0);
+        let t = body_threshold(&img);
+        assert!((50.0..690.0).contains(&t), "padding → second search, got {t}");
+    }
+
+    #[test]
+    fn a_body_cut_by_the_field_of_view_is_cut_along_that_axis_only() {
+        // The ellipsoid fits inside along x and y; a slab through the whole grid along z.
+        let g = Grid::axis_aligned([60, 40, 30], [2.0; 3], [-60.0, -40.0, -30.0]);
+        let img = ellipsoid(g.clone(), [0.0; 3]);
+        let (m, _) = body_mask(&img);
+        assert_eq!(cut_world_axes(&img, &m), [false, false, false]);
+        let mut slab = img.clone();
+        slab.data
+            .indexed_iter_mut()
+            .for_each(|((i, j, _), v)| *v = if (20..40).contains(&i) && (10..30).contains(&j) { 100.0 } else { 0.0 });
+        let (m, _) = body_mask(&slab);
+        assert_eq!(cut_world_axes(&slab, &m), [false, false, true]);
+        // Voxel axes permuted in the header (i runs along world z): the cut follows the world axis.
+        let g2 = Grid::new(
+            [30, 40, 60],
+            Affine::from_parts([[0.0, 0.0, 2.0], [0.0, 2.0, 0.0], [2.0, 0.0, 0.0]], [-60.0, -40.0, -30.0]),
+        )
+        .unwrap();
+        let mut p = Image::filled(g2, 0.0);
+        p.data
+            .indexed_iter_mut()
+            .for_each(|((_, j, k), v)| *v = if (20..40).contains(&k) && (10..30).contains(&j) { 100.0 } else { 0.0 });
+        let (m, _) = body_mask(&p);
+        assert_eq!(cut_world_axes(&p, &m), [false, false, true]);
     }
 
     #[test]

@@ -54,6 +54,12 @@ pub enum AffineMode {
     Rigid,
     /// A general affine map (12 parameters).
     Affine,
+    /// The map of the two body masks' moments: per world axis, the ratio of the bodies'
+    /// standard deviations as a scale and the shift of their centres
+    /// ([`crate::affine::body_map`]); no optimisation, a few milliseconds. Captures the
+    /// difference in body size between two people, which the coarse deformable levels
+    /// otherwise have to bend towards.
+    Body,
 }
 
 /// Every setting of a registration. Levels are counted from the finest (0 = the input grid).
@@ -181,7 +187,7 @@ impl RegParams {
             model: Model::Dense,
             grid_spacing_mm: 20.0,
             bending: 0.0,
-            affine: AffineMode::None,
+            affine: AffineMode::Body,
         };
         match name {
             "default" => Some(base),

@@ -376,7 +376,7 @@ pub fn register_scans(
 
     let t0 = initial.affine();
     let mode = match (params.affine, initial.applied) {
-        (AffineMode::None, true) => AffineMode::Rigid,
+        (AffineMode::None | AffineMode::Body, true) => AffineMode::Rigid,
         (m, _) => m,
     };
     let t = Instant::now();

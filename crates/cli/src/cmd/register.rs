@@ -147,8 +147,10 @@ pub struct ParamArgs {
     /// B-spline control point spacing in mm.
     #[arg(long, value_name = "MM")]
     pub grid_spacing: Option<f64>,
-    /// Linear pre-alignment before the deformable stage: none, rigid (6 parameters) or
-    /// affine (12); its matrix is written to affine.json and included in field.nii.gz.
+    /// Linear pre-alignment before the deformable stage: body (default: scale and shift from
+    /// the body masks' moments, milliseconds), rigid (6 parameters) or affine (12), both
+    /// optimised on MIND-SSC (seconds), or none; its matrix is written to affine.json and
+    /// included in field.nii.gz.
     #[arg(long, value_enum)]
     pub affine: Option<AffineArg>,
 }
@@ -310,6 +312,8 @@ pub enum AffineArg {
     Rigid,
     /// General affine map.
     Affine,
+    /// Scale and shift from the two body masks' moments (no optimisation; the default).
+    Body,
 }
 
 /// `--similarity` values.
@@ -409,6 +413,7 @@ impl ParamArgs {
                 AffineArg::None => sinew_solve::AffineMode::None,
                 AffineArg::Rigid => sinew_solve::AffineMode::Rigid,
                 AffineArg::Affine => sinew_solve::AffineMode::Affine,
+                AffineArg::Body => sinew_solve::AffineMode::Body,
             };
         }
         match &self.config {
