@@ -47,7 +47,8 @@ pub enum InitialMode {
     Centres,
     /// Always: the body centres and the rotation between the principal axes.
     Axes,
-    /// Never: the world frames are trusted as they are.
+    /// Never: the world frames are trusted as they are (and the body-moments start,
+    /// `AffineMode::Body`, is off too).
     Off,
 }
 

@@ -317,6 +317,15 @@ pub fn register_scans(
     if let Some(m) = mask {
         fixed.grid.ensure_same(&m.grid)?;
     }
+    // `InitialMode::Off` trusts the world frames as they are: nothing found from the body
+    // masks moves the moving scan, so the body-moments start is off too.
+    let without_body;
+    let params = if opts.initial == InitialMode::Off && params.affine == AffineMode::Body {
+        without_body = RegParams { affine: AffineMode::None, ..params.clone() };
+        &without_body
+    } else {
+        params
+    };
     let t = Instant::now();
     let wf = working_grid(&fixed.grid, opts.working_spacing_mm);
     let wm = working_grid(&moving.grid, opts.working_spacing_mm);
