@@ -588,6 +588,66 @@ pub fn compose_after(u: &mut sinew_grid::Field, a: &Affine) {
     });
 }
 
+/// Bounds of the per-axis scale of [`body_map`]: `[BODY_SCALE_MIN, 1 / BODY_SCALE_MIN]`.
+/// Chosen on the tuning splits (seed 7, 6 pairs each; mean Dice demo / second cohort):
+/// 0.65 → 0.8546 / 0.6589, 0.7 → 0.8546 / 0.6643, 0.75 → 0.8546 / 0.6575, 0.8 → 0.8537 /
+/// 0.6562, none (0.5) → 0.8546 / 0.6560; a damped scale `s^0.75` or `s^0.5` was worse
+/// (0.8502 / 0.6538, 0.8519 / 0.6468). Body extents include the fat layer, which varies more
+/// between people than the organs do, so unbounded ratios (up to 1.59 in the second cohort)
+/// overshoot.
+pub const BODY_SCALE_MIN: f64 = 0.7;
+
+/// Bodies whose volumes differ by more than this factor are not the same part of two
+/// comparable bodies (or one mask failed): [`body_map`] then keeps the identity.
+pub const BODY_VOLUME_RATIO_MAX: f64 = 3.0;
+
+/// The linear map of two body masks' moments ([`AffineMode::Body`]):
+/// `A·x = c_m + S·(x − c_f)` with `S = diag(s_x, s_y, s_z)` along the world axes,
+/// `s_d = σ_m,d / σ_f,d` (the bodies' standard deviations along world axis `d`, from the
+/// covariances of [`crate::frames::body_moments`]: `σ_d² = Σ_i e_i² a_i,d²` with extents
+/// `e_i` and unit axes `a_i`), clamped to `[BODY_SCALE_MIN, 1 / BODY_SCALE_MIN]`, and
+/// `c_f`, `c_m` the body centres (world mm). An axis along which either body reaches both
+/// faces of its scan's field of view (the grid axis closest to that world axis) says nothing
+/// about the body's size or centre there: it keeps scale 1 and no shift. When either mask is
+/// empty or the body volumes differ by more than [`BODY_VOLUME_RATIO_MAX`], the map is the
+/// identity. `parameters` holds `s_x, s_y, s_z, t_x, t_y, t_z` (`t = A·0`, mm).
+pub fn body_map(fixed: &Image, moving: &Image) -> AffineEstimate {
+    let t0 = Instant::now();
+    let (fm, ft) = crate::frames::body_mask(fixed);
+    let (mm, mt) = crate::frames::body_mask(moving);
+    let bf = crate::frames::body_moments(fixed, &fm, ft);
+    let bm = crate::frames::body_moments(moving, &mm, mt);
+    let var = |b: &crate::frames::BodyMoments, d: usize| -> f64 {
+        (0..3).map(|i| b.extents_mm[i].powi(2) * b.axes[i][d].powi(2)).sum()
+    };
+    let cut_f = crate::frames::cut_world_axes(fixed, &fm);
+    let cut_m = crate::frames::cut_world_axes(moving, &mm);
+    let ratio = bm.volume_ml / bf.volume_ml;
+    let usable =
+        bf.voxels > 0 && bm.voxels > 0 && (1.0 / BODY_VOLUME_RATIO_MAX..=BODY_VOLUME_RATIO_MAX).contains(&ratio);
+    let mut linear = [[0.0; 3]; 3];
+    let mut translation = [0.0; 3];
+    for d in 0..3 {
+        linear[d][d] = 1.0;
+        if !usable || cut_f[d] || cut_m[d] || var(&bf, d) <= 0.0 {
+            continue;
+        }
+        let s = (var(&bm, d) / var(&bf, d)).sqrt().clamp(BODY_SCALE_MIN, 1.0 / BODY_SCALE_MIN);
+        linear[d][d] = s;
+        translation[d] = bm.centre_mm[d] - s * bf.centre_mm[d];
+    }
+    let a = Affine::from_parts(linear, translation);
+    AffineEstimate {
+        mode: AffineMode::Body,
+        matrix: a.to_4x4(),
+        parameters: [linear[0][0], linear[1][1], linear[2][2], translation[0], translation[1], translation[2]].to_vec(),
+        centre_mm: bf.centre_mm,
+        initial_translation_mm: [0.0; 3],
+        levels: Vec::new(),
+        seconds: t0.elapsed().as_secs_f64(),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -694,65 +754,5 @@ mod tests {
         );
         let tiny = body([0.0; 3], [10.0, 10.0, 10.0]);
         assert_eq!(body_map(&fixed, &tiny).affine(), Affine::IDENTITY);
-    }
-}
-
-/// Bounds of the per-axis scale of [`body_map`]: `[BODY_SCALE_MIN, 1 / BODY_SCALE_MIN]`.
-/// Chosen on the tuning splits (seed 7, 6 pairs each; mean Dice demo / second cohort):
-/// 0.65 → 0.8546 / 0.6589, 0.7 → 0.8546 / 0.6643, 0.75 → 0.8546 / 0.6575, 0.8 → 0.8537 /
-/// 0.6562, none (0.5) → 0.8546 / 0.6560; a damped scale `s^0.75` or `s^0.5` was worse
-/// (0.8502 / 0.6538, 0.8519 / 0.6468). Body extents include the fat layer, which varies more
-/// between people than the organs do, so unbounded ratios (up to 1.59 in the second cohort)
-/// overshoot.
-pub const BODY_SCALE_MIN: f64 = 0.7;
-
-/// Bodies whose volumes differ by more than this factor are not the same part of two
-/// comparable bodies (or one mask failed): [`body_map`] then keeps the identity.
-pub const BODY_VOLUME_RATIO_MAX: f64 = 3.0;
-
-/// The linear map of two body masks' moments ([`AffineMode::Body`]):
-/// `A·x = c_m + S·(x − c_f)` with `S = diag(s_x, s_y, s_z)` along the world axes,
-/// `s_d = σ_m,d / σ_f,d` (the bodies' standard deviations along world axis `d`, from the
-/// covariances of [`crate::frames::body_moments`]: `σ_d² = Σ_i e_i² a_i,d²` with extents
-/// `e_i` and unit axes `a_i`), clamped to `[BODY_SCALE_MIN, 1 / BODY_SCALE_MIN]`, and
-/// `c_f`, `c_m` the body centres (world mm). An axis along which either body reaches both
-/// faces of its scan's field of view (the grid axis closest to that world axis) says nothing
-/// about the body's size or centre there: it keeps scale 1 and no shift. When either mask is
-/// empty or the body volumes differ by more than [`BODY_VOLUME_RATIO_MAX`], the map is the
-/// identity. `parameters` holds `s_x, s_y, s_z, t_x, t_y, t_z` (`t = A·0`, mm).
-pub fn body_map(fixed: &Image, moving: &Image) -> AffineEstimate {
-    let t0 = Instant::now();
-    let (fm, ft) = crate::frames::body_mask(fixed);
-    let (mm, mt) = crate::frames::body_mask(moving);
-    let bf = crate::frames::body_moments(fixed, &fm, ft);
-    let bm = crate::frames::body_moments(moving, &mm, mt);
-    let var = |b: &crate::frames::BodyMoments, d: usize| -> f64 {
-        (0..3).map(|i| b.extents_mm[i].powi(2) * b.axes[i][d].powi(2)).sum()
-    };
-    let cut_f = crate::frames::cut_world_axes(fixed, &fm);
-    let cut_m = crate::frames::cut_world_axes(moving, &mm);
-    let ratio = bm.volume_ml / bf.volume_ml;
-    let usable =
-        bf.voxels > 0 && bm.voxels > 0 && (1.0 / BODY_VOLUME_RATIO_MAX..=BODY_VOLUME_RATIO_MAX).contains(&ratio);
-    let mut linear = [[0.0; 3]; 3];
-    let mut translation = [0.0; 3];
-    for d in 0..3 {
-        linear[d][d] = 1.0;
-        if !usable || cut_f[d] || cut_m[d] || var(&bf, d) <= 0.0 {
-            continue;
-        }
-        let s = (var(&bm, d) / var(&bf, d)).sqrt().clamp(BODY_SCALE_MIN, 1.0 / BODY_SCALE_MIN);
-        linear[d][d] = s;
-        translation[d] = bm.centre_mm[d] - s * bf.centre_mm[d];
-    }
-    let a = Affine::from_parts(linear, translation);
-    AffineEstimate {
-        mode: AffineMode::Body,
-        matrix: a.to_4x4(),
-        parameters: [linear[0][0], linear[1][1], linear[2][2], translation[0], translation[1], translation[2]].to_vec(),
-        centre_mm: bf.centre_mm,
-        initial_translation_mm: [0.0; 3],
-        levels: Vec::new(),
-        seconds: t0.elapsed().as_secs_f64(),
     }
 }
