@@ -224,9 +224,16 @@ fn block_planes(nx: usize, ny: usize) -> usize {
 }
 
 /// Planes `k0 .. k0 + nk` of a volume held in memory order (`(nx, ny, nz)`, `k` fastest) copied
-/// into `out` in disk order (`(nk, ny, nx)`, `i` fastest): a blocked transposition, parallel
-/// over `j`, reading `nk` consecutive values per `(i, j)`.
+/// into `out` in disk order (`(nk, ny, nx)`, `i` fastest).
 fn to_disk_planes<T: Copy + Send + Sync>(src: &[T], shape: [usize; 3], k0: usize, out: &mut [T]) {
+    to_disk_planes_with(shape, k0, out, |n| src[n]);
+}
+
+/// Planes `k0 .. k0 + nk` in disk order (`(nk, ny, nx)`, `i` fastest): `out` receives
+/// `value(n)` for each voxel's memory-order index `n = (i·ny + j)·nz + k` of a volume of
+/// `shape = (nx, ny, nz)`. A blocked transposition, parallel over `j`, reading `nk`
+/// consecutive memory indices per `(i, j)`.
+fn to_disk_planes_with<T: Send + Sync>(shape: [usize; 3], k0: usize, out: &mut [T], value: impl Fn(usize) -> T + Sync) {
     use ndarray::{ArrayViewMut3, Axis};
     use rayon::prelude::*;
     let [nx, ny, nz] = shape;
@@ -236,7 +243,7 @@ fn to_disk_planes<T: Copy + Send + Sync>(src: &[T], shape: [usize; 3], k0: usize
         for (kk, mut row) in rows.outer_iter_mut().enumerate() {
             let row = row.as_slice_mut().expect("rows are contiguous");
             for (i, o) in row.iter_mut().enumerate() {
-                *o = src[(i * ny + j) * nz + k0 + kk];
+                *o = value((i * ny + j) * nz + k0 + kk);
             }
         }
     });
@@ -459,22 +466,11 @@ pub fn write_field(path: &Path, field: &Field, units: FieldUnits) -> Result<(), 
 
 /// [`to_disk_planes`] of one world component of a field held in voxels: `out` receives
 /// `u_mm = r · u_vox` (`r` a row of the grid's linear part), formed in f64 and rounded once,
-/// as [`Field::to_world_mm`] does. Parallel over `j`.
+/// as [`Field::to_world_mm`] does.
 fn to_disk_planes_mm(comps: [&[f32]; 3], r: [f64; 3], shape: [usize; 3], k0: usize, out: &mut [f32]) {
-    use ndarray::{ArrayViewMut3, Axis};
-    use rayon::prelude::*;
-    let [nx, ny, nz] = shape;
-    let nk = out.len() / (nx * ny);
-    let mut view = ArrayViewMut3::from_shape((nk, ny, nx), out).expect("whole planes");
-    view.axis_iter_mut(Axis(1)).into_par_iter().enumerate().for_each(|(j, mut rows)| {
-        for (kk, mut row) in rows.outer_iter_mut().enumerate() {
-            let row = row.as_slice_mut().expect("rows are contiguous");
-            for (i, o) in row.iter_mut().enumerate() {
-                let n = (i * ny + j) * nz + k0 + kk;
-                let v = [comps[0][n] as f64, comps[1][n] as f64, comps[2][n] as f64];
-                *o = (r[0] * v[0] + r[1] * v[1] + r[2] * v[2]) as f32;
-            }
-        }
+    to_disk_planes_with(shape, k0, out, |n| {
+        let v = [comps[0][n] as f64, comps[1][n] as f64, comps[2][n] as f64];
+        (r[0] * v[0] + r[1] * v[1] + r[2] * v[2]) as f32
     });
 }
 
