@@ -613,15 +613,28 @@ pub const BODY_VOLUME_RATIO_MAX: f64 = 3.0;
 /// identity. `parameters` holds `s_x, s_y, s_z, t_x, t_y, t_z` (`t = A·0`, mm).
 pub fn body_map(fixed: &Image, moving: &Image) -> AffineEstimate {
     let t0 = Instant::now();
-    let (fm, ft) = crate::frames::body_mask(fixed);
-    let (mm, mt) = crate::frames::body_mask(moving);
-    let bf = crate::frames::body_moments(fixed, &fm, ft);
-    let bm = crate::frames::body_moments(moving, &mm, mt);
+    let ((fm, bf), (mm, bm)) = rayon::join(|| crate::frames::body(fixed), || crate::frames::body(moving));
+    let mut e = body_map_of(fixed, &fm, &bf, moving, &mm, &bm);
+    e.seconds = t0.elapsed().as_secs_f64();
+    e
+}
+
+/// [`body_map`] from body masks and moments already found ([`crate::frames::body`] of each
+/// scan, as the initial alignment finds them): the same map, without finding them again.
+pub fn body_map_of(
+    fixed: &Image,
+    fixed_mask: &[bool],
+    bf: &crate::frames::BodyMoments,
+    moving: &Image,
+    moving_mask: &[bool],
+    bm: &crate::frames::BodyMoments,
+) -> AffineEstimate {
+    let t0 = Instant::now();
     let var = |b: &crate::frames::BodyMoments, d: usize| -> f64 {
         (0..3).map(|i| b.extents_mm[i].powi(2) * b.axes[i][d].powi(2)).sum()
     };
-    let cut_f = crate::frames::cut_world_axes(fixed, &fm);
-    let cut_m = crate::frames::cut_world_axes(moving, &mm);
+    let cut_f = crate::frames::cut_world_axes(fixed, fixed_mask);
+    let cut_m = crate::frames::cut_world_axes(moving, moving_mask);
     let ratio = bm.volume_ml / bf.volume_ml;
     let usable =
         bf.voxels > 0 && bm.voxels > 0 && (1.0 / BODY_VOLUME_RATIO_MAX..=BODY_VOLUME_RATIO_MAX).contains(&ratio);
@@ -629,10 +642,10 @@ pub fn body_map(fixed: &Image, moving: &Image) -> AffineEstimate {
     let mut translation = [0.0; 3];
     for d in 0..3 {
         linear[d][d] = 1.0;
-        if !usable || cut_f[d] || cut_m[d] || var(&bf, d) <= 0.0 {
+        if !usable || cut_f[d] || cut_m[d] || var(bf, d) <= 0.0 {
             continue;
         }
-        let s = (var(&bm, d) / var(&bf, d)).sqrt().clamp(BODY_SCALE_MIN, 1.0 / BODY_SCALE_MIN);
+        let s = (var(bm, d) / var(bf, d)).sqrt().clamp(BODY_SCALE_MIN, 1.0 / BODY_SCALE_MIN);
         linear[d][d] = s;
         translation[d] = bm.centre_mm[d] - s * bf.centre_mm[d];
     }

@@ -119,6 +119,20 @@ pub fn register(
     params: &RegParams,
     observer: &mut dyn FnMut(Progress),
 ) -> Result<Registration, SolveError> {
+    register_from(fixed, moving, mask, params, None, observer)
+}
+
+/// [`register`] with the linear stage's map already found by the caller (`linear`, e.g. the
+/// body-moments map from the body masks the initial alignment found:
+/// [`affine::body_map_of`]); `None` runs the stage `params.affine` asks for.
+pub fn register_from(
+    fixed: &Image,
+    moving: &Image,
+    mask: Option<&LabelMap>,
+    params: &RegParams,
+    linear: Option<affine::AffineEstimate>,
+    observer: &mut dyn FnMut(Progress),
+) -> Result<Registration, SolveError> {
     params.validate()?;
     // Coarse scans run fewer levels (see `RegParams::levels_for_mm`).
     let params = &params.for_spacing(fixed.grid.spacing());
@@ -147,9 +161,10 @@ pub fn register(
     // moved by 10° about each axis, 5 % scaling and 20 mm (the affine-composition test) 1.56 mm
     // resampled, 4.34 mm started from the map.
     let t0 = Instant::now();
-    let affine = match params.affine {
-        AffineMode::None => None,
-        mode => Some(affine::estimate(fixed, moving, mask, &affine::AffineParams::new(mode))?),
+    let affine = match (linear, params.affine) {
+        (Some(found), _) => Some(found),
+        (None, AffineMode::None) => None,
+        (None, mode) => Some(affine::estimate(fixed, moving, mask, &affine::AffineParams::new(mode))?),
     };
     let start_from_map = affine
         .as_ref()

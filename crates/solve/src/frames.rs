@@ -184,6 +184,13 @@ pub fn body_mask(img: &Image) -> (Vec<bool>, f32) {
     (img.as_slice().iter().map(|&v| v > t).collect(), t)
 }
 
+/// The body mask of `img` ([`body_mask`]) and its moments ([`body_moments`]).
+pub fn body(img: &Image) -> (Vec<bool>, BodyMoments) {
+    let (mask, t) = body_mask(img);
+    let moments = body_moments(img, &mask, t);
+    (mask, moments)
+}
+
 /// Centre, principal axes and extents of a mask on `img`'s grid (see the module docs). An
 /// empty mask gives the grid's centre and its axes.
 pub fn body_moments(img: &Image, mask: &[bool], threshold: f32) -> BodyMoments {
@@ -373,11 +380,6 @@ fn round_f64(x: f64) -> f64 {
 /// Bodies, overlap and the initial alignment of `moving` to `fixed`, each on its own grid
 /// (see the module docs). Returns the alignment and both body masks.
 pub fn initial_alignment(fixed: &Image, moving: &Image, mode: InitialMode) -> (InitialAlignment, Vec<bool>, Vec<bool>) {
-    let body = |img: &Image| {
-        let (mask, t) = body_mask(img);
-        let moments = body_moments(img, &mask, t);
-        (mask, moments)
-    };
     let ((fm, fb), (mm, mb)) = rayon::join(|| body(fixed), || body(moving));
     let shift: [f64; 3] = std::array::from_fn(|d| mb.centre_mm[d] - fb.centre_mm[d]);
     let dist = shift.iter().map(|v| v * v).sum::<f64>().sqrt();

@@ -35,6 +35,7 @@ use sinew_grid::{resample, Affine, Border, Grid, Image, LabelMap};
 use sinew_transform::JacobianStats;
 
 use crate::affine::{self, AffineEstimate, AffineParams};
+use crate::driver::register_from;
 use crate::frames::{self, InitialAlignment, InitialMode};
 use crate::native::{native_outputs, NativeField, NativeOutputs};
 use crate::{register, AffineMode, LevelReport, Progress, RegParams, SolveError};
@@ -347,7 +348,12 @@ pub fn register_scans(
     // through A first blurs it; measured on the real chest CT of the accuracy benchmark
     // under a known 10 mm warp with `--affine affine`: 0.73 mm mean endpoint error that way.)
     if !initial.applied && moving_w.grid.same_as(&wf, 1e-3) {
-        let reg = register(fixed_w, moving_w, mask_w.as_ref(), params, observer)?;
+        // The body-moments start comes from the bodies just found (not found again).
+        let t = Instant::now();
+        let body = (params.affine == AffineMode::Body)
+            .then(|| affine::body_map_of(fixed_w, &fmask, &initial.fixed_body, moving_w, &mmask, &initial.moving_body));
+        let body_s = t.elapsed().as_secs_f64();
+        let reg = register_from(fixed_w, moving_w, mask_w.as_ref(), params, body, observer)?;
         let a = reg.affine.as_ref().map_or(Affine::IDENTITY, |e| e.affine());
         initial.overlap_final = Some(frames::overlap(fixed_w, &fmask, moving_w, &mmask, &a));
         let moving_before = affine::apply_to_image(moving_w, &a, &wf, f32::NAN);
@@ -377,7 +383,7 @@ pub fn register_scans(
             levels: reg.levels,
             working_s,
             initial_s,
-            affine_s: reg.affine_s,
+            affine_s: body_s + reg.affine_s,
             pyramid_s: reg.pyramid_s,
             upsample_s,
         });
@@ -391,6 +397,12 @@ pub fn register_scans(
     let t = Instant::now();
     let (linear, a) = if mode == AffineMode::None {
         (None, t0)
+    } else if mode == AffineMode::Body {
+        // Only when the initial alignment was not applied (else the mode is rigid): the
+        // moving working image is where the bodies were just found, so they are not found again.
+        let est = affine::body_map_of(fixed_w, &fmask, &initial.fixed_body, moving_w, &mmask, &initial.moving_body);
+        let a = t0.compose(&est.affine());
+        (Some(est), a)
     } else {
         // The moving working image with its world coordinates pulled back through T₀, so the
         // linear stage starts from the initial alignment: voxel p sits at T₀⁻¹·G_m·p.
